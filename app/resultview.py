@@ -1,0 +1,182 @@
+"""The live result: <V> against <X>, the fit, the pattern speed, the budget.
+
+``QtResultView`` redraws whenever the controller's measurement changes, also
+while a slit is dragged. The numbers shown are the fields of core's
+:class:`~gyrometer.core.results.TWMeasurement` and
+:class:`~gyrometer.core.results.UncertaintyBudget`, formatted only.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6.QtCore import Qt
+from PySide6.QtGui import QColor
+from PySide6.QtWidgets import (QHBoxLayout, QHeaderView, QLabel, QPushButton,
+                               QTableWidget, QTableWidgetItem, QVBoxLayout,
+                               QWidget)
+
+from gyrometer.core.geometry import kpc_per_arcsec
+
+__all__ = ["QtResultView", "format_pattern_speed", "format_budget"]
+
+_POINT = QColor(40, 110, 200)
+_SELECTED = QColor(230, 150, 0)
+_UNUSED = QColor(170, 170, 170)
+_FIT = QColor(200, 40, 60)
+
+
+def _fmt(value: float, err: float) -> str:
+    """Value and error with the error's two significant figures."""
+    if not (math.isfinite(err) and err > 0):
+        return f"{value:.3g}"
+    digits = max(0, 1 - int(math.floor(math.log10(err))))
+    return f"{value:.{digits}f} \u00b1 {err:.{digits}f}"
+
+
+def format_pattern_speed(m) -> str:
+    """Rich text of Omega_p in km/s/arcsec and (with a distance) km/s/kpc."""
+    if m is None:
+        return "<b>\u03a9<sub>p</sub></b> \u2013 (no measurement)"
+    text = (f"<b>\u03a9<sub>p</sub> = {_fmt(m.omega_p_kms_arcsec, m.omega_p_err_kms_arcsec)}"
+            f"</b> km s<sup>\u22121</sup> arcsec<sup>\u22121</sup>")
+    if m.omega_p_kms_kpc is not None:
+        text += (f"<br><b>= {_fmt(m.omega_p_kms_kpc, m.omega_p_err_kms_kpc)}</b>"
+                 f" km s<sup>\u22121</sup> kpc<sup>\u22121</sup>"
+                 f" (D = {m.geometry.distance_mpc:g} Mpc)")
+    else:
+        text += "<br><i>set a distance for km s<sup>\u22121</sup> kpc<sup>\u22121</sup></i>"
+    f = m.fit
+    text += (f"<br><small>slope \u03a9<sub>p</sub> sin i = {_fmt(f.slope, f.slope_err)},"
+             f" intercept {_fmt(f.intercept, f.intercept_err)} km/s,"
+             f" \u03c7\u00b2/dof = {f.reduced_chi2:.2f}, {int(np.sum(m.used))} of "
+             f"{m.integrals.n_slits} slits, i = {m.geometry.inc_deg:.1f}\u00b0</small>"
+             "<br><small>fit-only error; run the uncertainty budget for the "
+             "full interval</small>")
+    return text
+
+
+def format_budget(budget) -> str:
+    """Rich text of the combined asymmetric interval."""
+    c = budget.combined
+    plus, minus = c.p84 - c.median, c.median - c.p16
+    text = (f"<b>\u03a9<sub>p</sub> = {c.median:.3g}"
+            f"<sup>+{plus:.2g}</sup><sub>\u2212{minus:.2g}</sub></b>"
+            " km s<sup>\u22121</sup> arcsec<sup>\u22121</sup>")
+    if budget.distance_mpc:
+        k = 1.0 / kpc_per_arcsec(budget.distance_mpc)
+        text += (f" = <b>{c.median * k:.3g}<sup>+{plus * k:.2g}</sup>"
+                 f"<sub>\u2212{minus * k:.2g}</sub></b> km s<sup>\u22121</sup>"
+                 " kpc<sup>\u22121</sup>")
+    text += f" <small>(median, 16th\u201384th percentiles, {c.n_draws} draws, seed {budget.seed})</small>"
+    return text
+
+
+class QtResultView(QWidget):
+    """The <V>-<X> plot, the pattern speed and the uncertainty budget."""
+
+    def __init__(self, controller, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.controller = controller
+        self.plot = pg.PlotWidget(background="w")
+        item = self.plot.getPlotItem()
+        item.setLabel("bottom", "\u27e8X\u27e9 (arcsec)")
+        item.setLabel("left", "\u27e8V\u27e9 \u2212 V<sub>sys</sub> (km/s)")
+        item.setTitle("Slit integrals and straight-line fit")
+        item.showGrid(x=True, y=True, alpha=0.25)
+        self.errors = pg.ErrorBarItem(pen=pg.mkPen(_POINT, width=1))
+        self.points = pg.ScatterPlotItem(size=8, pen=pg.mkPen("k", width=0.5))
+        self.fit_line = pg.PlotCurveItem(pen=pg.mkPen(_FIT, width=2))
+        for it in (self.errors, self.fit_line, self.points):
+            item.addItem(it)
+        self.omega = QLabel(format_pattern_speed(None))
+        self.omega.setTextFormat(Qt.TextFormat.RichText)
+        self.omega.setWordWrap(True)
+        self.omega.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        self.omega.setToolTip("Pattern speed from the slope of the fit divided "
+                              "by sin i (Tremaine & Weinberg 1984)")
+        self.warnings = QLabel("")
+        self.warnings.setWordWrap(True)
+        self.warnings.setStyleSheet("color: #a0522d;")
+
+        self.budget_button = QPushButton("Run uncertainty budget")
+        self.budget_button.setToolTip(
+            "Monte Carlo over map noise, slit choice, position angle, centre "
+            "and inclination (background; Ctrl+B)")
+        self.budget_text = QLabel("")
+        self.budget_text.setTextFormat(Qt.TextFormat.RichText)
+        self.budget_text.setWordWrap(True)
+        self.budget_table = QTableWidget(0, 5)
+        self.budget_table.setHorizontalHeaderLabels(
+            ["Error source", "Draws", "Median", "\u03c3 (16\u201384 %)", "Share"])
+        self.budget_table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
+        self.budget_table.verticalHeader().setVisible(False)
+        self.budget_table.setToolTip("Each error source sampled alone, then all "
+                                     "together; values in km/s/arcsec")
+        self.budget_table.setMaximumHeight(170)
+
+        layout = QVBoxLayout(self)
+        layout.setContentsMargins(2, 2, 2, 2)
+        layout.addWidget(self.plot, 3)
+        layout.addWidget(self.omega)
+        layout.addWidget(self.warnings)
+        row = QHBoxLayout()
+        row.addWidget(self.budget_button)
+        row.addStretch(1)
+        layout.addLayout(row)
+        layout.addWidget(self.budget_text)
+        layout.addWidget(self.budget_table, 1)
+
+        self.budget_button.clicked.connect(controller.run_budget)
+        controller.measurement_changed.connect(self.show_measurement)
+        controller.selection_changed.connect(self._selection_changed)
+        controller.budget_changed.connect(self.show_budget)
+
+    def _selection_changed(self, _index: int) -> None:
+        self.show_measurement(self.controller.measurement)
+
+    def show_measurement(self, m) -> None:
+        self.omega.setText(format_pattern_speed(m))
+        if m is None:
+            self.points.clear()
+            self.errors.setData(x=np.zeros(0), y=np.zeros(0), height=np.zeros(0),
+                                width=np.zeros(0))
+            self.fit_line.clear()
+            self.warnings.setText("")
+            return
+        it = m.integrals
+        x, y = np.asarray(it.x_mean_arcsec), np.asarray(it.v_mean_kms)
+        ok = np.isfinite(x) & np.isfinite(y)
+        selected = self.controller.selected
+        brushes = [pg.mkBrush(_SELECTED if i == selected else
+                              (_POINT if m.used[i] else _UNUSED)) for i in range(x.size)]
+        self.points.setData(x=x[ok], y=y[ok], brush=[b for b, k in zip(brushes, ok) if k],
+                            data=np.arange(x.size)[ok])
+        self.errors.setData(x=x[ok], y=y[ok], height=2 * np.asarray(it.v_err_kms)[ok],
+                            width=2 * np.asarray(it.x_err_arcsec)[ok])
+        # keep the axes still while a slit is dragged (fewer repaints, and
+        # the eye can follow the moving point); refit them when it ends
+        vb = self.plot.getPlotItem().getViewBox()
+        vb.enableAutoRange(enable=not self.controller.dragging)
+        if ok.any():
+            span = np.nanmax(np.abs(x[ok])) * 1.15 or 1.0
+            xs = np.array([-span, span])
+            self.fit_line.setData(xs, m.fit.slope * xs + m.fit.intercept)
+        self.warnings.setText("\n".join(f"\u26a0 {w}" for w in m.warnings))
+
+    def show_budget(self, budget) -> None:
+        self.budget_table.setRowCount(0)
+        if budget is None:
+            self.budget_text.setText("")
+            return
+        self.budget_text.setText(format_budget(budget))
+        self.budget_table.setRowCount(len(budget.terms))
+        for r, t in enumerate(budget.terms):
+            for c, text in enumerate((t.name, str(t.n_draws), f"{t.median:.4g}",
+                                      f"{t.sigma:.3g}", f"{100 * t.share:.0f} %"
+                                      if t.name != "all combined" else "")):
+                item = QTableWidgetItem(text)
+                item.setFlags(item.flags() & ~Qt.ItemFlag.ItemIsEditable)
+                self.budget_table.setItem(r, c, item)

@@ -1,0 +1,550 @@
+"""Moment maps of one emission line from a cube, streamed channel by channel.
+
+Method
+------
+1. Channel velocities ``v_c`` and widths ``dv_c`` (km/s) come from
+   :func:`gyrometer.core.spectral.channel_velocities` in the chosen
+   convention (absolute velocities, not relative to the systemic velocity).
+2. A velocity window ``|v - vsys| <= window_halfwidth`` selects the line's
+   channels (all channels when no systemic velocity is given).
+3. Up to ``noise_channels`` line-free channels on each side of the window
+   (the *sidebands*) give, per spaxel, a continuum level (the median of each
+   side, joined linearly in channel) and the noise (1.4826 x the median
+   absolute deviation of the continuum-subtracted sidebands; robust against
+   a stray line). Continuum subtraction is on by default for wavelength
+   axes (optical IFU lines sit on stellar continuum) and off for frequency
+   and velocity axes (radio cubes are normally continuum-subtracted).
+4. Mask (``mask='smooth'``): the cube is smoothed spatially (Gaussian) and
+   spectrally (boxcar), voxels above ``snr_threshold`` times the noise of
+   the *smoothed* cube are kept, and the mask is dilated by
+   ``dilation_channels`` channels and ``dilation_pixels`` pixels; the
+   moments are then taken of the unsmoothed data inside the mask. This is
+   the "smooth and mask" practice of Dame (2011, arXiv:1101.1499): it keeps
+   the faint line wings that clipping the raw noisy cube would cut, which
+   biases the first moment. ``mask='none'`` keeps every valid channel of
+   the window.
+5. Moments (sums over masked channels)::
+
+       M0 = sum I dv                        (intensity x km/s)
+       M1 = sum I v dv / M0                 (km/s)
+       M2 = sqrt(sum I (v - M1)^2 dv / M0)  (km/s, dispersion)
+
+6. Uncertainties by first-order (linear) error propagation with independent
+   channels, from the cube's variance where present, else from the sideband
+   noise (the continuum level's own error is neglected)::
+
+       var(M0) = sum s^2 dv^2
+       var(M1) = sum s^2 dv^2 (v - M1)^2 / M0^2
+       var(M2) = sum s^2 dv^2 ((v - M1)^2 - M2^2)^2 / (4 M2^2 M0^2)
+
+Streaming
+---------
+The window is read in blocks of ``chunk_channels`` channels from the
+(memory-mapped) cube, each block extended by a halo of ``smooth_channels//2
++ dilation_channels`` channels so that smoothing and dilation see the same
+neighbours whatever the block size; per-block sums are accumulated in
+float64 with one matrix product per block. The result does not depend on
+the block size beyond floating-point rounding.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, fields
+
+import astropy.units as u
+import numpy as np
+
+from .coords import pixel_scale_arcsec
+from .dataset import Cube, MapSet
+from .errors import DataContentError, RecipeError, SpectralAxisError
+from .progress import CancelFlag, ProgressCallback, check_cancel, report
+from .spectral import channel_velocities
+
+__all__ = ["MomentSettings", "compute_moments", "MASK_METHODS",
+           "CONTINUUM_METHODS"]
+
+#: Mask methods: smooth-and-clip-then-dilate, or every valid channel.
+MASK_METHODS = ("smooth", "none")
+#: Continuum handling: by axis type, linear from the sidebands, or none.
+CONTINUUM_METHODS = ("auto", "sidebands", "none")
+_MAD_TO_SIGMA = 1.482602218505602  # 1 / Phi^-1(3/4), normal distribution
+_CHUNK_BYTES = 32 * 2**20
+
+
+@dataclass(frozen=True)
+class MomentSettings:
+    """How to make moment maps from a cube.
+
+    Attributes
+    ----------
+    line : str or None
+        Line name for the rest value (see :func:`gyrometer.core.lines.get_line`);
+        on an air-wavelength axis its air wavelength is used.
+    rest_value : float or None
+        Rest frequency/wavelength overriding ``line`` and the header.
+    rest_unit : str
+        Unit of ``rest_value`` (``"Angstrom"``, ``"GHz"`` ...).
+    rest_air : bool
+        ``rest_value`` is an air wavelength.
+    convention : str or None
+        ``"radio"``, ``"optical"`` or ``"relativistic"``; default the axis's.
+    vsys_kms : float or None
+        Centre of the velocity window, km/s (same convention). None: the
+        whole spectral axis is the window.
+    window_halfwidth_kms : float
+        Half-width of the velocity window, km/s.
+    mask : str
+        ``"smooth"`` (smooth-and-clip, then dilate) or ``"none"``.
+    snr_threshold : float
+        Clip level in units of the smoothed cube's noise.
+    smooth_fwhm_pix : float or None
+        FWHM of the spatial Gaussian, pixels; default the PSF FWHM in pixels
+        (at least 1.5), or 2 pixels if the PSF is unknown.
+    smooth_channels : int
+        Width of the spectral boxcar (odd; 1 = no spectral smoothing).
+    dilation_channels, dilation_pixels : int
+        Growth of the mask along the spectrum and on the sky.
+    continuum : str
+        ``"auto"``, ``"sidebands"`` or ``"none"``.
+    noise_channels : int
+        Maximum number of sideband channels used on each side.
+    chunk_channels : int or None
+        Channels per streamed block; default about 32 MiB of float64.
+    air_method : str
+        Air/vacuum formula (``"morton"``, ``"ciddor"``, ``"greisen"``).
+    tracer : str or None
+        Tracer of the output map set; default from the line (else "other").
+    """
+
+    line: str | None = None
+    rest_value: float | None = None
+    rest_unit: str = ""
+    rest_air: bool = False
+    convention: str | None = None
+    vsys_kms: float | None = None
+    window_halfwidth_kms: float = 500.0
+    mask: str = "smooth"
+    snr_threshold: float = 4.0
+    smooth_fwhm_pix: float | None = None
+    smooth_channels: int = 3
+    dilation_channels: int = 2
+    dilation_pixels: int = 1
+    continuum: str = "auto"
+    noise_channels: int = 30
+    chunk_channels: int | None = None
+    air_method: str = "morton"
+    tracer: str | None = None
+
+    def __post_init__(self) -> None:
+        def bad(name: str, why: str) -> RecipeError:
+            return RecipeError(f"moment setting {name}={getattr(self, name)!r}"
+                               f" {why}", keyword=name,
+                               value=getattr(self, name))
+        if self.mask not in MASK_METHODS:
+            raise bad("mask", f"is not one of {MASK_METHODS}")
+        if self.continuum not in CONTINUUM_METHODS:
+            raise bad("continuum", f"is not one of {CONTINUUM_METHODS}")
+        if not self.window_halfwidth_kms > 0:
+            raise bad("window_halfwidth_kms", "must be positive")
+        if not self.snr_threshold > 0:
+            raise bad("snr_threshold", "must be positive")
+        if self.smooth_channels < 1 or self.smooth_channels % 2 == 0:
+            raise bad("smooth_channels", "must be a positive odd number")
+        for name in ("dilation_channels", "dilation_pixels", "noise_channels"):
+            if getattr(self, name) < 0:
+                raise bad(name, "must not be negative")
+        if self.chunk_channels is not None and self.chunk_channels < 1:
+            raise bad("chunk_channels", "must be at least 1")
+        if self.smooth_fwhm_pix is not None and self.smooth_fwhm_pix < 0:
+            raise bad("smooth_fwhm_pix", "must not be negative")
+
+    def replace(self, **changes: object) -> "MomentSettings":
+        """A copy with some fields changed."""
+        values = {f.name: getattr(self, f.name) for f in fields(self)}
+        values.update(changes)
+        return MomentSettings(**values)
+
+
+def _rest_argument(settings: MomentSettings):
+    if settings.rest_value is not None:
+        return settings.rest_value * u.Unit(settings.rest_unit or "Hz")
+    return settings.line
+
+
+def _gaussian_kernel(sigma_pix: float) -> np.ndarray:
+    """Normalised Gaussian taps, truncated at 3 sigma."""
+    radius = max(1, int(3.0 * sigma_pix + 0.5))
+    x = np.arange(-radius, radius + 1, dtype=float)
+    kernel = np.exp(-0.5 * (x / sigma_pix) ** 2)
+    return kernel / kernel.sum()
+
+
+def _index(ndim: int, axis: int, part: slice) -> tuple:
+    index = [slice(None)] * ndim
+    index[axis] = part
+    return tuple(index)
+
+
+def _correlate(a: np.ndarray, kernel: np.ndarray, axis: int) -> np.ndarray:
+    """Correlate with a symmetric odd kernel along ``axis``; zeros beyond
+    the edges. Shifted-slice sums: contiguous, vectorised, no copies of the
+    block beyond the output."""
+    radius = kernel.size // 2
+    out = a * a.dtype.type(kernel[radius])
+    n = a.shape[axis]
+    for j in range(1, min(radius, n - 1) + 1):
+        weight = a.dtype.type(kernel[radius + j])
+        head = _index(a.ndim, axis, slice(j, None))
+        tail = _index(a.ndim, axis, slice(None, -j))
+        out[head] += weight * a[tail]
+        out[tail] += weight * a[head]
+    return out
+
+
+def _boxcar0(a: np.ndarray, width: int, scale: float) -> np.ndarray:
+    """``scale`` x sum over ``width`` neighbouring channels (axis 0), the
+    edge channels repeated beyond the ends of ``a``."""
+    half = width // 2
+    out = a.copy()
+    n = a.shape[0]
+    for j in range(1, half + 1):
+        k = min(j, n)
+        out[j:] += a[:-j] if j < n else 0
+        out[:k] += a[0]
+        out[:-j] += a[j:] if j < n else 0
+        out[n - k:] += a[-1]
+    out *= a.dtype.type(scale)
+    return out
+
+
+def _grow(mask: np.ndarray, reach: int, axes: tuple[int, ...]) -> np.ndarray:
+    """Binary dilation by ``reach`` elements along each of ``axes``
+    (a box structuring element); nothing beyond the edges."""
+    for axis in axes:
+        src = mask
+        mask = mask.copy()
+        for j in range(1, min(reach, src.shape[axis] - 1) + 1):
+            head = _index(src.ndim, axis, slice(j, None))
+            tail = _index(src.ndim, axis, slice(None, -j))
+            mask[head] |= src[tail]
+            mask[tail] |= src[head]
+    return mask
+
+
+class _Smoother:
+    """Separable smoothing: a spectral boxcar of ``n_channels`` channels and
+    a spatial Gaussian; :meth:`variance` gives the variance of the smoothed
+    data for independent voxels (squared kernel weights)."""
+
+    def __init__(self, spatial_sigma_pix: float, n_channels: int) -> None:
+        self.kernel = (_gaussian_kernel(spatial_sigma_pix)
+                       if spatial_sigma_pix > 0 else None)
+        self.n_channels = n_channels
+
+    def data(self, block: np.ndarray) -> np.ndarray:
+        out = block
+        if self.n_channels > 1:
+            out = _boxcar0(out, self.n_channels, 1.0 / self.n_channels)
+        if self.kernel is not None:
+            out = _correlate(_correlate(out, self.kernel, 1), self.kernel, 2)
+        return out
+
+    def variance(self, block: np.ndarray) -> np.ndarray:
+        out = block
+        if self.n_channels > 1:
+            out = _boxcar0(out, self.n_channels, 1.0 / self.n_channels ** 2)
+        if self.kernel is not None:
+            k2 = self.kernel ** 2
+            out = _correlate(_correlate(out, k2, 1), k2, 2)
+        return out
+
+
+def _read(cube: Cube, start: int, stop: int, variance: bool = False
+          ) -> np.ndarray:
+    """A private copy of channels ``start:stop`` as native-order float32
+    (one pass over the memory map; float64 input stays float64)."""
+    source = cube.variance if variance else cube.data
+    block = source[start:stop]
+    dtype = np.float64 if block.dtype.itemsize > 4 and block.dtype.kind == "f" \
+        else np.float32
+    return np.array(block, dtype=dtype, order="C", copy=True)
+
+
+def _mad_sigma(values: np.ndarray) -> np.ndarray:
+    """Robust standard deviation along axis 0 (NaN-aware)."""
+    centre = np.nanmedian(values, axis=0)
+    return _MAD_TO_SIGMA * np.nanmedian(np.abs(values - centre), axis=0)
+
+
+class _Continuum:
+    """Per-spaxel linear continuum in channel index from two sidebands."""
+
+    def __init__(self, lower: tuple[int, int] | None,
+                 upper: tuple[int, int] | None, cube: Cube,
+                 subtract: bool) -> None:
+        self.points: list[tuple[float, np.ndarray]] = []
+        if not subtract:
+            return
+        for band in (lower, upper):
+            if band is None:
+                continue
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN
+                level = np.nanmedian(_read(cube, *band), axis=0)
+            self.points.append((0.5 * (band[0] + band[1] - 1),
+                                np.nan_to_num(level)))
+
+    def __call__(self, start: int, stop: int) -> np.ndarray | float:
+        if not self.points:
+            return 0.0
+        if len(self.points) == 1:
+            return self.points[0][1][None]
+        (c_a, level_a), (c_b, level_b) = self.points
+        channels = np.arange(start, stop, dtype=float)[:, None, None]
+        slope = (level_b - level_a) / (c_b - c_a)
+        return level_a[None] + slope[None] * (channels - c_a)
+
+
+def _window(v_kms: np.ndarray, settings: MomentSettings, path: str
+            ) -> tuple[int, int]:
+    if settings.vsys_kms is None:
+        return 0, v_kms.size
+    inside = np.flatnonzero(np.abs(v_kms - settings.vsys_kms)
+                            <= settings.window_halfwidth_kms)
+    if inside.size == 0:
+        raise DataContentError(
+            f"the velocity window {settings.vsys_kms:g} +/- "
+            f"{settings.window_halfwidth_kms:g} km/s lies outside the cube "
+            f"({np.nanmin(v_kms):.1f} to {np.nanmax(v_kms):.1f} km/s)",
+            path=path, keyword="vsys_kms",
+            hint="check the systemic velocity, the line and the convention")
+    return int(inside[0]), int(inside[-1]) + 1
+
+
+def _spatial_sigma(cube: Cube, settings: MomentSettings) -> float:
+    fwhm = settings.smooth_fwhm_pix
+    if fwhm is None:
+        fwhm = 2.0
+        if cube.psf_fwhm_arcsec:
+            try:
+                scale = float(pixel_scale_arcsec(cube.wcs))
+                fwhm = max(1.5, cube.psf_fwhm_arcsec / scale)
+            except Exception:  # no usable pixel scale: keep the default
+                fwhm = 2.0
+    return fwhm / np.sqrt(8.0 * np.log(2.0))
+
+
+def compute_moments(cube: Cube, settings: MomentSettings | None = None, *,
+                    progress: ProgressCallback | None = None,
+                    cancel: CancelFlag | None = None) -> MapSet:
+    """Moment 0, 1 and 2 maps with uncertainties from a cube.
+
+    Parameters
+    ----------
+    cube : Cube
+        The data, possibly memory-mapped; read in channel blocks.
+    settings : MomentSettings, optional
+        Line, window, mask and streaming settings (see the module docstring
+        for the method).
+    progress, cancel
+        See :mod:`gyrometer.core.progress`.
+
+    Returns
+    -------
+    MapSet
+        ``intensity`` = moment 0 (cube unit x km/s), ``velocity_kms`` =
+        moment 1 (absolute, in the chosen convention), ``dispersion_kms`` =
+        moment 2, and their 1-sigma errors (None if no noise estimate is
+        possible). Spaxels without positive moment 0 have NaN velocity and
+        dispersion.
+
+    Raises
+    ------
+    SpectralAxisError
+        No rest value for a frequency or wavelength axis.
+    DataContentError
+        The window is outside the cube; no noise estimate for the mask.
+    Cancelled
+        ``cancel`` was set.
+    """
+    settings = settings or MomentSettings()
+    path = cube.provenance.path or cube.name
+    try:
+        v_kms, dv_kms = channel_velocities(
+            cube.spectral, _rest_argument(settings), settings.convention,
+            rest_air=settings.rest_air, air_method=settings.air_method)
+    except SpectralAxisError as exc:
+        if exc.path is not None:
+            raise
+        raise SpectralAxisError(exc.message, path=path, keyword=exc.keyword,
+                                value=exc.value, hint=exc.hint) from exc
+    n_chan = v_kms.size
+    ny, nx = cube.spatial_shape
+    w0, w1 = _window(v_kms, settings, path)
+    n_side = settings.noise_channels
+    lower = (max(0, w0 - n_side), w0) if w0 > 0 and n_side else None
+    upper = (w1, min(n_chan, w1 + n_side)) if w1 < n_chan and n_side else None
+    family = cube.spectral.ctype.upper()[:4]
+    subtract = settings.continuum == "sidebands" or (
+        settings.continuum == "auto" and family in ("WAVE", "AWAV"))
+    continuum = _Continuum(lower, upper, cube, subtract)
+    smoother = _Smoother(_spatial_sigma(cube, settings),
+                         settings.smooth_channels)
+    use_mask = settings.mask == "smooth"
+
+    # --- noise from the sidebands (per spaxel) --------------------------
+    sigma_raw = sigma_smooth = None
+    bands = [b for b in (lower, upper) if b is not None]
+    if bands:
+        raw, smooth = [], []
+        for band in bands:
+            block = _read(cube, *band) - continuum(*band)
+            raw.append(block)
+            if use_mask:
+                filled = np.where(np.isfinite(block), block, 0.0)
+                smooth.append(np.where(np.isfinite(block),
+                                       smoother.data(filled), np.nan))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN spaxels
+            sigma_raw = _mad_sigma(np.concatenate(raw))
+            if use_mask:
+                sigma_smooth = _mad_sigma(np.concatenate(smooth))
+        del raw, smooth
+    has_variance = cube.variance is not None
+    if use_mask and sigma_smooth is None and not has_variance:
+        raise DataContentError(
+            "no noise estimate for the signal mask: the window covers the "
+            "whole cube and there is no variance extension", path=path,
+            keyword="window_halfwidth_kms",
+            hint="give vsys_kms and a window that leaves line-free channels, "
+                 "or use mask='none'")
+    with_errors = has_variance or sigma_raw is not None
+
+    # --- streamed sums --------------------------------------------------
+    v_ref = float(settings.vsys_kms if settings.vsys_kms is not None
+                  else np.median(v_kms[w0:w1]))
+    chunk = settings.chunk_channels or max(1, _CHUNK_BYTES // (4 * ny * nx))
+    halo = (settings.smooth_channels // 2 + settings.dilation_channels
+            if use_mask else 0)
+    n_pix = ny * nx
+    sums = np.zeros((3, n_pix))
+    err_sums = np.zeros((5, n_pix)) if with_errors else None
+    any_finite = np.zeros(n_pix, dtype=bool)
+    any_valid = np.zeros(n_pix, dtype=bool)
+    sigma2 = None if sigma_raw is None else (sigma_raw ** 2).reshape(1, -1)
+    total = w1 - w0
+    report(progress, 0, total, "moments")
+    for c0 in range(w0, w1, chunk):
+        check_cancel(cancel, "moment maps")
+        c1 = min(c0 + chunk, w1)
+        n = c1 - c0
+        r0, r1 = max(0, c0 - halo), min(n_chan, c1 + halo)
+        block = _read(cube, r0, r1)
+        if continuum.points:
+            block -= continuum(r0, r1).astype(block.dtype)
+        finite = np.isfinite(block)
+        np.copyto(block, 0, where=~finite)  # NaN -> 0, in place
+        inner = slice(c0 - r0, c1 - r0)
+        values = block[inner].reshape(n, -1)  # a view: zeroed in place below
+        keep = finite[inner].reshape(n, -1)
+        any_finite |= np.logical_or.reduce(keep, axis=0)
+        if use_mask:
+            signal = _signal_mask(block, smoother, settings, sigma_smooth,
+                                  cube, (r0, r1), (w0, w1))
+            keep = keep & signal[inner].reshape(n, -1)
+            np.copyto(values, 0, where=~keep)
+        any_valid |= np.logical_or.reduce(keep, axis=0)
+        u_kms = v_kms[c0:c1] - v_ref
+        dv = dv_kms[c0:c1]
+        # per-block sums in the block's precision, accumulated in float64
+        weights = np.stack([dv, dv * u_kms, dv * u_kms ** 2]).astype(values.dtype)
+        sums += weights @ values
+        if err_sums is not None:
+            if has_variance:
+                var = _read(cube, c0, c1, variance=True).reshape(n, -1)
+            else:
+                var = np.broadcast_to(sigma2.astype(values.dtype), values.shape)
+            var = np.where(keep, var, 0)
+            dv2 = dv ** 2
+            err_weights = np.stack([dv2 * u_kms ** k for k in range(5)])
+            err_sums += err_weights.astype(var.dtype) @ var
+        report(progress, c1 - w0, total, "moments")
+    return _assemble(cube, settings, sums, err_sums, any_valid, any_finite,
+                     v_ref, (ny, nx))
+
+
+def _signal_mask(block: np.ndarray, smoother: _Smoother,
+                 settings: MomentSettings, sigma_smooth: np.ndarray | None,
+                 cube: Cube, read: tuple[int, int], window: tuple[int, int]
+                 ) -> np.ndarray:
+    """Smooth, clip at snr_threshold x smoothed noise, dilate.
+
+    ``block`` holds channels ``read[0]:read[1]`` with NaN set to 0.
+    """
+    smooth = smoother.data(block)
+    if sigma_smooth is not None:
+        limit = (settings.snr_threshold * sigma_smooth[None]).astype(smooth.dtype)
+    else:
+        var = _read(cube, *read, variance=True)
+        np.copyto(var, 0, where=~np.isfinite(var))
+        limit = settings.snr_threshold * np.sqrt(smoother.variance(var))
+    with np.errstate(invalid="ignore"):
+        above = smooth > limit
+    channels = np.arange(*read)
+    above &= ((channels >= window[0]) & (channels < window[1]))[:, None, None]
+    if settings.dilation_channels:
+        above = _grow(above, settings.dilation_channels, (0,))
+    if settings.dilation_pixels:
+        above = _grow(above, settings.dilation_pixels, (1, 2))
+    return above
+
+
+def _assemble(cube: Cube, settings: MomentSettings, sums: np.ndarray,
+              err_sums: np.ndarray | None, any_valid: np.ndarray,
+              any_finite: np.ndarray, v_ref: float,
+              shape: tuple[int, int]) -> MapSet:
+    s0, s1, s2 = sums
+    with np.errstate(divide="ignore", invalid="ignore"):
+        mom0 = np.where(any_finite, s0, np.nan)
+        good = any_valid & (s0 > 0)
+        mean_u = np.where(good, s1 / s0, np.nan)
+        var_v = s2 / s0 - mean_u ** 2
+        mom1 = v_ref + mean_u
+        mom2 = np.where(good & (var_v >= 0), np.sqrt(np.maximum(var_v, 0)),
+                        np.nan)
+        errs: list[np.ndarray | None] = [None, None, None]
+        if err_sums is not None:
+            w0, w1, w2, w3, w4 = err_sums
+            err0 = np.where(any_finite, np.sqrt(w0), np.nan)
+            # sum w (u - mu)^2 with mu = mean_u
+            central2 = w2 - 2 * mean_u * w1 + mean_u ** 2 * w0
+            err1 = np.sqrt(np.maximum(central2, 0)) / s0
+            # sum w ((u - mu)^2 - m2^2)^2, expanded in powers of u
+            beta = -2 * mean_u
+            gamma = mean_u ** 2 - var_v
+            quartic = (w4 + 2 * beta * w3 + (beta ** 2 + 2 * gamma) * w2
+                       + 2 * beta * gamma * w1 + gamma ** 2 * w0)
+            err2 = np.sqrt(np.maximum(quartic, 0)) / (2 * mom2 * s0)
+            err2 = np.where(mom2 > 0, err2, np.nan)
+            errs = [err0, np.where(good, err1, np.nan), err2]
+    from .lines import get_line
+
+    tracer = settings.tracer
+    if tracer is None and settings.line:
+        tracer = get_line(settings.line).tracer
+    try:
+        unit = (u.Unit(cube.unit, parse_strict="raise") * u.km / u.s
+                ).to_string() if cube.unit else "km / s"
+    except Exception:  # unparseable BUNIT: keep the text
+        unit = f"{cube.unit} km/s"
+    reshape = (lambda a: None if a is None else a.reshape(shape))
+    return MapSet(
+        intensity=reshape(mom0), velocity_kms=reshape(mom1), wcs=cube.wcs,
+        intensity_err=reshape(errs[0]), velocity_err_kms=reshape(errs[1]),
+        dispersion_kms=reshape(mom2), dispersion_err_kms=reshape(errs[2]),
+        intensity_unit=unit, name=cube.name, tracer=tracer or "other",
+        psf_fwhm_arcsec=cube.psf_fwhm_arcsec,
+        velocity_convention=(settings.convention
+                             or cube.spectral.convention),
+        specsys=cube.spectral.specsys, provenance=(cube.provenance,))

@@ -1,0 +1,238 @@
+"""Recipes: the TOML file a user writes to run a whole measurement.
+
+A recipe has the sections and keys of a session file (see
+:data:`gyrometer.core.session.SCHEMA`) without the ``[gyrometer-session]``
+table. Relative paths are relative to the recipe's own folder, so a recipe
+travels with its data. :func:`load_recipe` checks every value's type,
+refuses unknown sections and keys (suggesting the closest known name) and
+missing input files, raising :class:`~gyrometer.core.errors.RecipeError`
+whose ``keyword`` is the dotted key (``"geometry.pa_deg"``).
+:func:`starter_recipe` writes a recipe for a data file with every setting
+present and commented, filled with cheap estimates from the data.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from pathlib import Path
+
+import numpy as np
+
+from .errors import GyrometerError, RecipeError
+from .session import (SCHEMA, SESSION_SCHEMA, KeySpec, Session, _toml_value,
+                      load_session, read_toml, session_from_dict)
+
+__all__ = ["load_recipe", "load_any", "check_recipe", "describe_session",
+           "starter_recipe"]
+
+
+def load_recipe(path: str | os.PathLike, *, check_files: bool = True
+                ) -> Session:
+    """Read and validate a recipe file.
+
+    Parameters
+    ----------
+    path : path-like
+        The TOML recipe.
+    check_files : bool
+        Require the input files to exist.
+
+    Raises
+    ------
+    RecipeError
+        Invalid TOML, a wrong type, an unknown key, a missing file; the
+        message names the file and the dotted key.
+    """
+    p = Path(path)
+    doc = read_toml(p, RecipeError)
+    if SESSION_SCHEMA in doc:
+        raise RecipeError(f"this is a session file ([{SESSION_SCHEMA}])",
+                          path=str(p), keyword=SESSION_SCHEMA,
+                          hint="load it with load_session, or use "
+                               "load_any, which accepts both")
+    return session_from_dict(doc, base_dir=p.resolve().parent,
+                             source=str(p), check_files=check_files)
+
+
+def load_any(path: str | os.PathLike, *, check_files: bool = True) -> Session:
+    """Read a recipe or a session file (told apart by the session table)."""
+    p = Path(path)
+    doc = read_toml(p, RecipeError)
+    if SESSION_SCHEMA in doc:
+        session = load_session(p)
+        if check_files:
+            from .session import _check_files, SessionError
+            _check_files(session.input, session.rotation, str(p),
+                         SessionError)
+        return session
+    return session_from_dict(doc, base_dir=p.resolve().parent,
+                             source=str(p), check_files=check_files)
+
+
+def describe_session(session: Session) -> list[str]:
+    """Plain-language lines saying what a run of ``session`` will do."""
+    lines = []
+    inp = session.input
+    files = ", ".join(f"{r}={Path(p).name}" for r, p in inp.files().items())
+    lines.append(f"galaxy: {session.name or '(name from the data)'}, "
+                 f"tracer: {session.tracer}")
+    lines.append(f"input: {inp.kind} ({files})")
+    g = session.geometry
+    if g is None:
+        lines.append("geometry: estimated from the velocity map")
+    else:
+        dist = "no distance" if g.distance_mpc is None else \
+            f"D = {g.distance_mpc:g} Mpc"
+        lines.append(f"geometry: PA = {g.pa_deg:g} deg, i = {g.inc_deg:g} "
+                     f"deg, Vsys = {g.vsys_kms:g} km/s, {dist}")
+    if session.slits is not None:
+        lines.append(f"slits: {len(session.slits)} given explicitly")
+    else:
+        r = session.slit_rule
+        lines.append("slits: " + (f"{r.count}" if r.count else "automatic "
+                                  "number of") + " slits"
+                     + ("" if not r.spacing_arcsec else
+                        f", spacing {r.spacing_arcsec:g} arcsec"))
+    b = session.budget
+    lines.append(f"uncertainty: {b.draws} draws per source, seed {b.seed}, "
+                 f"sources: {', '.join(b.terms)}")
+    rc = session.rotation
+    lines.append("rotation curve: " + {"derived": "fitted to the velocity map",
+                                       "file": f"from {rc.file}",
+                                       "none": "none (no resonances)"}[rc.source]
+                 + ("" if rc.source == "none" else f", {rc.model} model"))
+    bar = session.bar
+    lines.append("bar length: " + ("estimated" if bar.length_arcsec is None
+                                   else "none" if bar.length_arcsec == 0
+                                   else f"{bar.length_arcsec:g} arcsec"))
+    out = session.output
+    lines.append(f"outputs: {out.folder} ({', '.join(out.tables)}; figures: "
+                 f"{', '.join(out.figures) or 'none'})")
+    return lines
+
+
+def check_recipe(path: str | os.PathLike) -> tuple[Session, list[str]]:
+    """Validate a recipe or session without running it.
+
+    Returns the session and :func:`describe_session` lines; raises
+    :class:`RecipeError` / :class:`SessionError` on the first fault.
+    """
+    session = load_any(path)
+    return session, describe_session(session)
+
+
+# -- starter recipe ------------------------------------------------------------
+def _rel(path: Path, base: Path | None) -> str:
+    if base is None:
+        return str(path)
+    try:
+        return os.path.relpath(path, base)
+    except ValueError:  # other drive on Windows
+        return str(path)
+
+
+def _estimates(data_path: Path) -> dict[str, dict[str, object]]:
+    """Cheap values from the data: route, name, tracer, centre, slits."""
+    from .coords import pixel_scale_arcsec
+    from .dataset import Cube
+    from .fitsio import open_data
+
+    data = open_data(data_path)
+    est: dict[str, dict[str, object]] = {"galaxy": {}, "input": {},
+                                         "geometry": {}, "slits": {}}
+    est["galaxy"]["name"] = data.name
+    if isinstance(data, Cube):
+        est["input"]["kind"] = "cube"
+        est["input"]["cube"] = str(data_path)
+        shape = data.spatial_shape
+        image = None
+    else:
+        est["input"]["kind"] = "maps"
+        est["input"]["maps"] = str(data_path)
+        est["galaxy"]["tracer"] = data.tracer
+        shape = data.shape
+        image = np.asarray(data.intensity, dtype=float)
+        v = np.asarray(data.velocity_kms, dtype=float)
+        if np.isfinite(v).any():
+            est["geometry"]["vsys_kms"] = round(float(np.nanmedian(v)), 1)
+    wcs = data.wcs
+    ny, nx = shape
+    if image is not None and np.isfinite(image).any():
+        smooth = np.where(np.isfinite(image), image, -np.inf)
+        py, px = np.unravel_index(int(np.argmax(smooth)), smooth.shape)
+    else:
+        px, py = (nx - 1) / 2.0, (ny - 1) / 2.0
+    world = wcs.celestial.pixel_to_world(px, py).icrs
+    est["geometry"]["ra_deg"] = round(float(world.ra.deg), 6)
+    est["geometry"]["dec_deg"] = round(float(world.dec.deg), 6)
+    scale = pixel_scale_arcsec(wcs)
+    psf = data.psf_fwhm_arcsec or 2.0 * scale
+    spacing = max(psf, 2.0 * scale)
+    half_field = 0.5 * min(nx, ny) * scale
+    count = int(max(3, min(15, 2 * math.floor(0.6 * half_field / spacing) + 1)))
+    est["slits"].update(count=count, spacing_arcsec=round(spacing, 3),
+                        width_arcsec=round(spacing, 3),
+                        half_length_arcsec=round(0.9 * half_field, 2))
+    return est
+
+
+def starter_recipe(data_path: str | os.PathLike, *,
+                   recipe_dir: str | os.PathLike | None = None) -> str:
+    """Text of a recipe for ``data_path`` with every setting commented.
+
+    Values that can be read or guessed cheaply from the data are filled in
+    (route, galaxy name, tracer, centre at the intensity peak, systemic
+    velocity as the median velocity, slit spacing from the PSF); the
+    geometry is set to ``mode = "estimate"``. Settings without a value
+    (e.g. the distance) appear commented out.
+
+    Parameters
+    ----------
+    data_path : path-like
+        A FITS cube or map set.
+    recipe_dir : path-like, optional
+        Folder the recipe will be saved in; paths are written relative to
+        it (absolute otherwise).
+    """
+    data_path = Path(data_path).resolve()
+    base = None if recipe_dir is None else Path(recipe_dir).resolve()
+    est = _estimates(data_path)
+    lines = [
+        "# Gyrometer recipe: one measurement of a bar pattern speed",
+        "# (Tremaine & Weinberg 1984). Run it with:  gyrometer measure THIS_FILE",
+        "# Check it without running:                gyrometer check THIS_FILE",
+        "# Paths are relative to this file's folder. Lines starting with '#'",
+        "# are comments; remove the '#' of an optional setting to use it.",
+        f"# Written for: {data_path.name}",
+        "",
+    ]
+    for section, specs in SCHEMA.items():
+        lines.append(f"[{section}]")
+        for spec in specs:
+            value = est.get(section, {}).get(spec.name, spec.default)
+            if spec.kind == "path" and value and spec.name != "folder":
+                value = _rel(Path(str(value)), base)
+            lines.append(f"# {spec.doc}")
+            if spec.choices and spec.kind != "list":
+                lines.append(f"#   choices: {', '.join(map(str, spec.choices))}")
+            lines.append(_starter_line(spec, value, section))
+        lines.append("")
+    return "\n".join(lines)
+
+
+def _starter_line(spec: KeySpec, value, section: str) -> str:
+    if section == "geometry" and spec.name == "mode":
+        return 'mode = "estimate"'
+    if value is None:
+        if spec.kind == "str?":
+            return f'{spec.name} = ""'
+        if spec.kind == "float|estimate":
+            return f'{spec.name} = "estimate"'
+        example = {"distance_mpc": 20.0, "rest_value": 6562.8,
+                   "inc_deg": 45.0, "pa_deg": 0.0}.get(spec.name, 0.0)
+        return f"# {spec.name} = {_toml_value(example)}    (optional)"
+    if isinstance(value, tuple):
+        value = list(value)
+    return f"{spec.name} = {_toml_value(value)}"
+

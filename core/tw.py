@@ -1,0 +1,593 @@
+"""Tremaine-Weinberg integrals per slit and the pattern-speed fit.
+
+For each slit (Tremaine & Weinberg 1984, ApJ 282, L5)::
+
+    <X> = sum w S X / sum w S,    <V> = sum w S (V - Vsys) / sum w S
+
+over the slit's pixels with exact overlap weights ``w``. The pattern speed
+follows from the slope of ``<V>`` against ``<X>`` across slits (Merrifield
+& Kuijken 1995, MNRAS 274, 933): ``<V> = Omega_p sin i <X> + c``, fitted
+with the York et al. (2004) regression (:mod:`gyrometer.core.yorkfit`).
+
+Masking and truncation work on bins of one pixel scale along ``X``,
+centred on the minor axis (bin ``k`` covers ``|X - k dX| <= dX / 2``). In
+symmetric mode a bin is used only when it and its mirror bin ``-k`` hold
+no masked pixel and no pixel beyond the map edge, so an axisymmetric disk
+(``S`` even and ``V - Vsys`` odd in ``X``) still cancels (derived; see
+DEVELOPERS.md). Without symmetry every valid pixel is used.
+
+Errors are propagated linearly from the error maps (or the cube's
+variance), with the covariance of ``<X>`` and ``<V>``.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from .dataset import Cube, MapSet
+from .errors import DataContentError, FitError, SlitError
+from .geometry import DiskGeometry
+from .progress import CancelFlag, ProgressCallback, check_cancel, report
+from .results import LineFit, SlitIntegrals, TWMeasurement
+from .slits import PixelFrame, Slit, SlitSet, SlitWeights, pixel_frame, slit_weights
+from .yorkfit import YORK_METHOD, york_fit
+
+__all__ = [
+    "slit_integrals_maps",
+    "slit_integrals_cube",
+    "fit_pattern_speed",
+    "measure",
+    "LiveMeasurer",
+    "OLS_METHOD",
+]
+
+#: Method string of the fallback fit used when no errors are available.
+OLS_METHOD = ("ordinary least squares of <V> on <X> (no error maps; errors "
+              "from the scatter)")
+
+# Order of the per-row sums: B = sum wS, A = sum wSX, C = sum wS(V-Vsys),
+# the (co)variances of B, A, C, then the valid-pixel count and weight.
+_B, _A, _C, _VBB, _VAA, _VCC, _VAB, _VAC, _VBC, _NPIX, _WSUM = range(11)
+_NSUMS = 11
+
+
+@dataclass(frozen=True, eq=False)
+class _Layout:
+    """Pixels of all slits, grouped in rows = (slit, X bin)."""
+
+    row: np.ndarray          # per entry
+    flat: np.ndarray         # per entry, -1 beyond the map
+    weight: np.ndarray       # per entry
+    x_arcsec: np.ndarray     # per entry
+    row_slit: np.ndarray     # per row
+    row_mirror: np.ndarray   # per row
+    row_absx: np.ndarray     # per row: |k| dX (bin centre)
+    row_has: np.ndarray      # per row: any pixel of the strip (incl. beyond edge)
+    row_outside: np.ndarray  # per row: weight beyond the map edge > 0
+    row_start: np.ndarray    # per slit: first row
+    area_pix: np.ndarray     # per slit
+    dx_arcsec: float
+    n_slits: int
+
+
+def _layout(weights: Sequence[SlitWeights]) -> _Layout:
+    n = len(weights)
+    if n == 0:
+        raise SlitError("the slit set is empty", hint="add at least one slit")
+    dx = weights[0].pixel_scale_arcsec
+    k_max = [int(math.ceil(np.max(np.abs(w.x_arcsec), initial=0.0) / dx + 0.5)) + 1
+             for w in weights]
+    n_rows = np.array([2 * k + 1 for k in k_max])
+    row_start = np.concatenate([[0], np.cumsum(n_rows)[:-1]])
+    rows, row_slit, row_mirror, row_absx = [], [], [], []
+    for s, (w, k) in enumerate(zip(weights, k_max)):
+        kk = np.rint(w.x_arcsec / dx).astype(np.int64)
+        rows.append(row_start[s] + k + kk)
+        local = np.arange(-k, k + 1)
+        row_slit.append(np.full(local.size, s))
+        row_mirror.append(row_start[s] + k - local)
+        row_absx.append(np.abs(local) * dx)
+    row = np.concatenate(rows)
+    flat = np.concatenate([w.flat_index for w in weights])
+    weight = np.concatenate([w.weight for w in weights])
+    total = int(n_rows.sum())
+    row_has = np.bincount(row, weights=weight, minlength=total) > 0
+    row_outside = np.bincount(row, weights=weight * (flat < 0), minlength=total) > 0
+    return _Layout(row, flat, weight, np.concatenate([w.x_arcsec for w in weights]),
+                   np.concatenate(row_slit), np.concatenate(row_mirror),
+                   np.concatenate(row_absx), row_has, row_outside, row_start,
+                   np.array([w.area_pix for w in weights]), dx, n)
+
+
+def _gather(array, flat):
+    """``array.ravel()[flat]`` with NaN where ``flat < 0``."""
+    if array is None:
+        return None
+    values = np.asarray(array, dtype=float).ravel()[np.maximum(flat, 0)]
+    return np.where(flat >= 0, values, np.nan)
+
+
+def _pixel_terms_maps(layout: _Layout, maps: MapSet, vsys_kms: float):
+    """Per-entry integrands: S, S V', var S, var(S V'), cov(S, S V'), valid."""
+    s = _gather(maps.intensity, layout.flat)
+    v = _gather(maps.velocity_kms, layout.flat) - vsys_kms
+    valid = np.isfinite(s) & np.isfinite(v)
+    have_err = maps.intensity_err is not None and maps.velocity_err_kms is not None
+    if have_err:
+        es = _gather(maps.intensity_err, layout.flat)
+        ev = _gather(maps.velocity_err_kms, layout.flat)
+        valid &= np.isfinite(es) & np.isfinite(ev)
+    s = np.where(valid, s, 0.0)
+    v = np.where(valid, v, 0.0)
+    if have_err:
+        vs = np.where(valid, es, 0.0) ** 2
+        vv = np.where(valid, ev, 0.0) ** 2
+        terms = (s, s * v, vs, vs * v * v + s * s * vv, vs * v)
+    else:
+        nan = np.full(s.shape, np.nan)
+        terms = (s, s * v, nan, nan, nan)
+    return terms, valid
+
+
+def _row_sums(layout: _Layout, terms, valid) -> np.ndarray:
+    """The 11 per-row sums from per-entry integrands (see ``_B`` ...)."""
+    s, sv, var_s, var_sv, cov_s_sv = terms
+    w = layout.weight * valid
+    x = layout.x_arcsec
+    w2 = w * w
+    n_rows = layout.row_slit.size
+    out = np.empty((_NSUMS, n_rows))
+    for q, values in ((_B, w * s), (_A, w * s * x), (_C, w * sv),
+                      (_VBB, w2 * var_s), (_VAA, w2 * var_s * x * x),
+                      (_VCC, w2 * var_sv), (_VAB, w2 * var_s * x),
+                      (_VAC, w2 * cov_s_sv * x), (_VBC, w2 * cov_s_sv),
+                      (_NPIX, (w > 0).astype(float)), (_WSUM, w)):
+        out[q] = np.bincount(layout.row, weights=values, minlength=n_rows)
+    return out
+
+
+def _row_bad(layout: _Layout, valid) -> np.ndarray:
+    """Rows holding a masked pixel or a pixel beyond the map edge."""
+    n_rows = layout.row_slit.size
+    masked = np.bincount(layout.row, weights=layout.weight * ~valid, minlength=n_rows)
+    return (masked > 0) | layout.row_outside
+
+
+def _used_rows(layout: _Layout, bad: np.ndarray, symmetric: bool) -> np.ndarray:
+    if not symmetric:
+        return layout.row_has.copy()
+    ok = layout.row_has & ~bad
+    return ok & ok[layout.row_mirror]
+
+
+def _reduce(layout: _Layout, sums: np.ndarray, bad: np.ndarray, symmetric: bool,
+            offsets: np.ndarray, half_lengths: np.ndarray) -> SlitIntegrals:
+    """Slit integrals from row sums (shared by the map and cube routes)."""
+    use = _used_rows(layout, bad, symmetric)
+    slit_sums = np.add.reduceat(sums * use, layout.row_start, axis=1)
+    b, a, c = slit_sums[_B], slit_sums[_A], slit_sums[_C]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ok = b > 0
+        x_mean = np.where(ok, a / b, np.nan)
+        v_mean = np.where(ok, c / b, np.nan)
+        b2 = b * b
+        var_x = (slit_sums[_VAA] - 2 * x_mean * slit_sums[_VAB]
+                 + x_mean ** 2 * slit_sums[_VBB]) / b2
+        var_v = (slit_sums[_VCC] - 2 * v_mean * slit_sums[_VBC]
+                 + v_mean ** 2 * slit_sums[_VBB]) / b2
+        cov = (slit_sums[_VAC] - x_mean * slit_sums[_VBC] - v_mean * slit_sums[_VAB]
+               + x_mean * v_mean * slit_sums[_VBB]) / b2
+        x_err = np.sqrt(np.maximum(var_x, 0.0))
+        v_err = np.sqrt(np.maximum(var_v, 0.0))
+        corr = np.clip(cov / (x_err * v_err), -1.0, 1.0)
+    corr = np.where(np.isfinite(corr), corr, 0.0)
+    # Truncation: a strip row dropped (symmetric) or a masked/outside pixel.
+    dropped = layout.row_has & ~use if symmetric else layout.row_has & bad
+    truncated = np.add.reduceat(dropped.astype(int), layout.row_start) > 0
+    used_absx = np.where(use & layout.row_has, layout.row_absx + 0.5 * layout.dx_arcsec, 0.0)
+    reach = np.maximum.reduceat(used_absx, layout.row_start)
+    half_used = np.where(truncated, np.minimum(reach, half_lengths), half_lengths)
+    coverage = np.clip(slit_sums[_WSUM] / layout.area_pix, 0.0, 1.0)
+    return SlitIntegrals(
+        offset_arcsec=np.asarray(offsets, dtype=float),
+        x_mean_arcsec=x_mean, x_err_arcsec=x_err,
+        v_mean_kms=v_mean, v_err_kms=v_err, xv_corr=corr,
+        flux=b, flux_err=np.sqrt(np.maximum(slit_sums[_VBB], 0.0)),
+        n_pixels=slit_sums[_NPIX].astype(int), coverage=coverage,
+        truncated=truncated, half_length_used_arcsec=half_used)
+
+
+def _slit_meta(slits):
+    items = tuple(slits)
+    offsets = np.array([s.offset_arcsec for s in items])
+    halves = np.array([s.half_length_arcsec for s in items])
+    return items, offsets, halves
+
+
+def _check_weights(weights, shape):
+    weights = tuple(weights)
+    if not weights:
+        raise SlitError("the slit set is empty", hint="add at least one slit")
+    n_pix = shape[0] * shape[1]
+    for w in weights:
+        if w.flat_index.size and w.flat_index.max() >= n_pix:
+            raise SlitError("slit weights were computed for a larger map",
+                            hint="recompute the weights for this data set")
+    return weights
+
+
+def slit_integrals_maps(maps: MapSet, geometry: DiskGeometry,
+                        weights: Sequence[SlitWeights], *, symmetric: bool = True,
+                        offsets_arcsec=None, half_lengths_arcsec=None) -> SlitIntegrals:
+    """Tremaine-Weinberg integrals of every slit from intensity and velocity maps.
+
+    Parameters
+    ----------
+    maps : MapSet
+        Intensity ``S`` (any linear unit), velocity ``V`` (km/s) and,
+        optionally, their 1-sigma error maps.
+    geometry : DiskGeometry
+        ``vsys_kms`` is subtracted from ``V``.
+    weights : sequence of SlitWeights
+        From :func:`gyrometer.core.slits.slit_weights` for this map.
+    symmetric : bool
+        Truncate each slit symmetrically about the minor axis and mirror
+        masked pixels ``X -> -X`` (see module notes).
+    offsets_arcsec, half_lengths_arcsec : array_like, optional
+        Slit offsets and nominal half-lengths stored in the result.
+
+    Returns
+    -------
+    SlitIntegrals
+        ``<X>`` (arcsec), ``<V>`` (km/s) with linearly propagated errors
+        ``d<X>/dS_p = w_p (X_p - <X>) / B``, ``d<V>/dS_p = w_p (V_p - <V>) /
+        B``, ``d<V>/dV_p = w_p S_p / B`` (``B = sum w S``), and their
+        correlation. Errors are NaN without error maps.
+    """
+    weights = _check_weights(weights, maps.shape)
+    layout = _layout(weights)
+    terms, valid = _pixel_terms_maps(layout, maps, geometry.vsys_kms)
+    sums = _row_sums(layout, terms, valid)
+    bad = _row_bad(layout, valid)
+    n = len(weights)
+    offsets = np.full(n, np.nan) if offsets_arcsec is None else offsets_arcsec
+    halves = np.full(n, np.nan) if half_lengths_arcsec is None else half_lengths_arcsec
+    return _reduce(layout, sums, bad, symmetric, np.asarray(offsets, float),
+                   np.asarray(halves, float))
+
+
+def _channel_velocities(cube: Cube) -> np.ndarray:
+    """Channel-centre velocities (km/s) in the cube's convention."""
+    from . import spectral  # written alongside; imported lazily
+    return np.asarray(spectral.channel_velocities(cube.spectral), dtype=float)
+
+
+def slit_integrals_cube(cube: Cube, geometry: DiskGeometry,
+                        weights: Sequence[SlitWeights], *, symmetric: bool = True,
+                        window_kms: tuple[float, float] | None = None,
+                        velocities_kms=None, chunk_channels: int = 64,
+                        offsets_arcsec=None, half_lengths_arcsec=None,
+                        progress: ProgressCallback | None = None,
+                        cancel: CancelFlag | None = None) -> SlitIntegrals:
+    """Tremaine-Weinberg integrals straight from a spectral cube.
+
+    With channel velocities ``v_c`` relative to ``Vsys``, widths ``dv_c``
+    and intensities ``I(p, c)`` (DOMAIN notes, "Cubes directly")::
+
+        int S dX    -> sum_p w_p sum_c I dv_c
+        int S V dX  -> sum_p w_p sum_c I v_c dv_c
+        int S X dX  -> sum_p w_p X_p sum_c I dv_c
+
+    No moment map is formed: no ratio, clipping or line fit per pixel. Only
+    the slit pixels are read, channel chunk by channel chunk (the cube may
+    be a memory map); the spectral sums are linear, so the result equals
+    that of summing slit spectra first, while masked pixels (any NaN in the
+    window) can still be mirrored within each slit as in the map route.
+
+    Parameters
+    ----------
+    cube : Cube
+    geometry : DiskGeometry
+    weights : sequence of SlitWeights
+    symmetric : bool
+    window_kms : (float, float), optional
+        Velocity window relative to ``Vsys`` (km/s); all channels if None.
+        Use a generous window: clipping the line biases ``<V>``.
+    velocities_kms : array_like, optional
+        Channel velocities (km/s), overriding the cube's spectral axis
+        (which is converted by :func:`gyrometer.core.spectral.channel_velocities`).
+    chunk_channels : int
+        Channels read at a time.
+    progress, cancel
+        See :mod:`gyrometer.core.progress`.
+
+    Returns
+    -------
+    SlitIntegrals
+        Errors from the cube's variance (NaN without one), assuming
+        independent voxels.
+    """
+    weights = _check_weights(weights, cube.spatial_shape)
+    layout = _layout(weights)
+    v_kms = (_channel_velocities(cube) if velocities_kms is None
+             else np.asarray(velocities_kms, dtype=float))
+    if v_kms.size != cube.shape[0]:
+        raise DataContentError("channel velocities do not match the cube",
+                               value=(v_kms.size, cube.shape[0]))
+    v_rel = v_kms - geometry.vsys_kms
+    dv = np.abs(np.gradient(v_kms)) if v_kms.size > 1 else np.ones(1)
+    chans = np.arange(v_kms.size)
+    if window_kms is not None:
+        lo, hi = sorted(window_kms)
+        chans = chans[(v_rel >= lo) & (v_rel <= hi)]
+    if chans.size == 0:
+        raise DataContentError("no channel inside the velocity window",
+                               keyword="window_kms", value=window_kms)
+    pix, inv = np.unique(layout.flat[layout.flat >= 0], return_inverse=True)
+    m0 = np.zeros(pix.size)
+    m1 = np.zeros(pix.size)
+    var0 = np.zeros(pix.size)
+    var1 = np.zeros(pix.size)
+    cov01 = np.zeros(pix.size)
+    bad_pix = np.zeros(pix.size, dtype=bool)
+    ny, nx = cube.spatial_shape
+    has_var = cube.variance is not None
+    step = max(1, int(chunk_channels))
+    total = chans.size
+    for start in range(0, total, step):
+        check_cancel(cancel, "cube slit integrals")
+        cc = chans[start:start + step]
+        sl = slice(cc[0], cc[-1] + 1)
+        sel = cc - cc[0]
+        block = np.asarray(cube.data[sl], dtype=float).reshape(-1, ny * nx)[sel][:, pix]
+        vr, d = v_rel[cc][:, None], dv[cc][:, None]
+        nan = ~np.isfinite(block)
+        bad_pix |= nan.any(axis=0)
+        block = np.where(nan, 0.0, block)
+        m0 += (block * d).sum(axis=0)
+        m1 += (block * vr * d).sum(axis=0)
+        if has_var:
+            var = np.asarray(cube.variance[sl], dtype=float).reshape(-1, ny * nx)[sel][:, pix]
+            bad_pix |= ~np.isfinite(var).all(axis=0)
+            var = np.where(np.isfinite(var), var, 0.0) * d * d
+            var0 += var.sum(axis=0)
+            var1 += (var * vr * vr).sum(axis=0)
+            cov01 += (var * vr).sum(axis=0)
+        report(progress, min(start + step, total), total, "cube slit integrals")
+    entry = np.zeros(layout.flat.size, dtype=np.int64)
+    entry[layout.flat >= 0] = inv
+    inside = layout.flat >= 0
+    valid = inside & ~bad_pix[entry]
+    if not has_var:
+        var0[:] = var1[:] = cov01[:] = np.nan
+    terms = tuple(np.where(valid, arr[entry], 0.0) for arr in (m0, m1, var0, var1, cov01))
+    sums = _row_sums(layout, terms, valid)
+    bad = _row_bad(layout, valid)
+    n = len(weights)
+    offsets = np.full(n, np.nan) if offsets_arcsec is None else offsets_arcsec
+    halves = np.full(n, np.nan) if half_lengths_arcsec is None else half_lengths_arcsec
+    return _reduce(layout, sums, bad, symmetric, np.asarray(offsets, float),
+                   np.asarray(halves, float))
+
+
+def _usable(integrals: SlitIntegrals, exclude=()) -> np.ndarray:
+    used = (np.isfinite(integrals.x_mean_arcsec) & np.isfinite(integrals.v_mean_kms)
+            & (integrals.flux > 0))
+    for k in exclude:
+        if 0 <= int(k) < used.size:
+            used[int(k)] = False
+    return used
+
+
+def _ols_fit(x, y) -> LineFit:
+    n = x.size
+    xm, ym = x.mean(), y.mean()
+    sxx = ((x - xm) ** 2).sum()
+    if sxx == 0:
+        raise FitError("all <X> values are equal: the slope is undefined")
+    b = ((x - xm) * (y - ym)).sum() / sxx
+    a = ym - b * xm
+    chi2 = float(((y - a - b * x) ** 2).sum())
+    s2 = chi2 / (n - 2) if n > 2 else float("nan")
+    var_b = s2 / sxx
+    return LineFit(float(b), float(a), math.sqrt(var_b),
+                   math.sqrt(s2 * (1.0 / n + xm * xm / sxx)), -xm * var_b,
+                   chi2, n - 2, OLS_METHOD)
+
+
+def fit_pattern_speed(integrals: SlitIntegrals, *, exclude: Sequence[int] = ()):
+    """Fit ``<V> = m <X> + c`` across the usable slits.
+
+    Returns
+    -------
+    fit : LineFit
+        York et al. (2004) regression with errors on both axes and their
+        correlation; ordinary least squares (errors from the scatter) when
+        the integrals carry no errors.
+    used : numpy.ndarray of bool
+        Slits that entered the fit.
+
+    Raises
+    ------
+    FitError
+        Fewer than two usable slits.
+    """
+    used = _usable(integrals, exclude)
+    if used.sum() < 2:
+        raise FitError("fewer than two slits have valid integrals",
+                       value=int(used.sum()),
+                       hint="add slits, lengthen them, or move them onto the data")
+    x = integrals.x_mean_arcsec[used]
+    y = integrals.v_mean_kms[used]
+    sx = integrals.x_err_arcsec[used]
+    sy = integrals.v_err_kms[used]
+    if np.all(np.isfinite(sx)) and np.all(np.isfinite(sy)) and np.all((sx > 0) | (sy > 0)):
+        fit = york_fit(x, y, sx, sy, integrals.xv_corr[used])
+    else:
+        fit = _ols_fit(x, y)
+    return fit, used
+
+
+def _omega_err(fit: LineFit, sin_i: float) -> float:
+    """Fit-only error of Omega_p, km/s/arcsec: ``sigma_slope / sin i``.
+
+    Not rescaled by the reduced chi-square: the noise-calibration tests
+    show the York errors alone are calibrated for independent slits; extra
+    scatter (adjacent slits closer than the PSF, systematics) is captured
+    by the bootstrap term of :mod:`gyrometer.core.budget`.
+    """
+    return fit.slope_err / sin_i
+
+
+def _assemble(integrals, geometry, route, exclude, warn, tracer) -> TWMeasurement:
+    fit, used = fit_pattern_speed(integrals, exclude=exclude)
+    sin_i = geometry.sin_i
+    m = TWMeasurement(integrals=integrals, fit=fit, used=used, geometry=geometry,
+                      route=route, omega_p_kms_arcsec=fit.slope / sin_i,
+                      omega_p_err_kms_arcsec=_omega_err(fit, sin_i))
+    from .diagnostics import check_measurement  # avoids an import cycle
+    messages = check_measurement(m, tracer=tracer, issue=warn)
+    return TWMeasurement(integrals=integrals, fit=fit, used=used, geometry=geometry,
+                         route=route, omega_p_kms_arcsec=m.omega_p_kms_arcsec,
+                         omega_p_err_kms_arcsec=m.omega_p_err_kms_arcsec,
+                         warnings=tuple(messages))
+
+
+def measure(data: MapSet | Cube, geometry: DiskGeometry, slits: SlitSet | Sequence[Slit],
+            *, symmetric: bool | None = None, exclude: Sequence[int] = (),
+            weights: Sequence[SlitWeights] | None = None, frame: PixelFrame | None = None,
+            warn: bool = True, tracer: str | None = None, window_kms=None,
+            velocities_kms=None, progress: ProgressCallback | None = None,
+            cancel: CancelFlag | None = None) -> TWMeasurement:
+    """Measure a pattern speed with the Tremaine-Weinberg method.
+
+    Parameters
+    ----------
+    data : MapSet or Cube
+        Maps (route ``"maps"``) or a cube (route ``"cube"``).
+    geometry : DiskGeometry
+    slits : SlitSet or sequence of Slit
+    symmetric : bool, optional
+        Symmetric truncation and mirrored masking; defaults to
+        ``slits.symmetric`` (True for a plain sequence).
+    exclude : sequence of int
+        Slits left out of the fit (their integrals are still reported).
+    weights, frame : optional
+        Precomputed :func:`~gyrometer.core.slits.slit_weights` /
+        :func:`~gyrometer.core.slits.pixel_frame` for this data set.
+    warn : bool
+        Issue the diagnostics (:func:`gyrometer.core.diagnostics.check_measurement`)
+        as Python warnings too; they are always stored in
+        :attr:`TWMeasurement.warnings`.
+    tracer : str, optional
+        Overrides ``data.tracer`` for the gas caveat.
+    window_kms, velocities_kms, progress, cancel
+        Cube route only; see :func:`slit_integrals_cube`.
+
+    Returns
+    -------
+    TWMeasurement
+        ``Omega_p = slope / sin i`` in km/s/arcsec (no distance needed) and,
+        with ``geometry.distance_mpc``, km/s/kpc; see
+        :attr:`TWMeasurement.omega_p`.
+    """
+    items, offsets, halves = _slit_meta(slits)
+    if symmetric is None:
+        symmetric = getattr(slits, "symmetric", True)
+    if isinstance(data, Cube):
+        shape, wcs, route = data.spatial_shape, data.wcs, "cube"
+    elif isinstance(data, MapSet):
+        shape, wcs, route = data.shape, data.wcs, "maps"
+    else:
+        raise DataContentError("measure() needs a MapSet or a Cube",
+                               value=type(data).__name__)
+    if weights is None:
+        weights = slit_weights(items, geometry, wcs, shape, frame=frame)
+    if route == "cube":
+        integrals = slit_integrals_cube(
+            data, geometry, weights, symmetric=symmetric, window_kms=window_kms,
+            velocities_kms=velocities_kms, offsets_arcsec=offsets,
+            half_lengths_arcsec=halves, progress=progress, cancel=cancel)
+        tracer = tracer or "other"
+    else:
+        integrals = slit_integrals_maps(data, geometry, weights, symmetric=symmetric,
+                                        offsets_arcsec=offsets,
+                                        half_lengths_arcsec=halves)
+        tracer = tracer or data.tracer
+    return _assemble(integrals, geometry, route, exclude, warn, tracer)
+
+
+class LiveMeasurer:
+    """Fast re-measurement while slits are dragged (maps route).
+
+    Caches the pixel frame and every slit's weights; :meth:`update_slit`
+    recomputes only the changed slit's weights (about a millisecond), then
+    the integrals and fit of all slits (about a millisecond for 20 slits on
+    a 500 x 500 map; see ``benchmarks/bench_tw.py``). Diagnostics are stored
+    in the result but not issued as Python warnings.
+
+    Parameters
+    ----------
+    maps : MapSet
+    geometry : DiskGeometry
+    slits : SlitSet
+    exclude : sequence of int
+    """
+
+    def __init__(self, maps: MapSet, geometry: DiskGeometry, slits: SlitSet, *,
+                 exclude: Sequence[int] = ()) -> None:
+        self._maps = maps
+        self._exclude = tuple(exclude)
+        self._geometry = geometry
+        self._frame = pixel_frame(maps.wcs, maps.shape, geometry)
+        self._slits = slits
+        self._weights = list(slit_weights(slits, geometry, maps.wcs, maps.shape,
+                                          frame=self._frame))
+
+    @property
+    def slits(self) -> SlitSet:
+        return self._slits
+
+    @property
+    def geometry(self) -> DiskGeometry:
+        return self._geometry
+
+    @property
+    def weights(self) -> tuple[SlitWeights, ...]:
+        return tuple(self._weights)
+
+    def measure(self) -> TWMeasurement:
+        """The measurement for the current slits and geometry."""
+        return measure(self._maps, self._geometry, self._slits,
+                       weights=self._weights, warn=False)
+
+    def update_slit(self, index: int, slit: Slit) -> TWMeasurement:
+        """Replace slit ``index`` and re-measure (only its weights are recomputed)."""
+        self._slits = self._slits.replaced(index, slit)
+        self._weights[index] = slit_weights((slit,), self._geometry, self._maps.wcs,
+                                            self._maps.shape, frame=self._frame)[0]
+        return self.measure()
+
+    def set_slits(self, slits: SlitSet) -> TWMeasurement:
+        """Replace the whole slit set and re-measure."""
+        self._slits = slits
+        self._weights = list(slit_weights(slits, self._geometry, self._maps.wcs,
+                                          self._maps.shape, frame=self._frame))
+        return self.measure()
+
+    def set_geometry(self, geometry: DiskGeometry) -> TWMeasurement:
+        """Change the geometry (weights are recomputed unless only Vsys,
+        inclination, distance or errors changed) and re-measure."""
+        old = self._geometry
+        self._geometry = geometry
+        if (old.ra_deg, old.dec_deg) != (geometry.ra_deg, geometry.dec_deg):
+            self._frame = pixel_frame(self._maps.wcs, self._maps.shape, geometry)
+        if (old.ra_deg, old.dec_deg, old.pa_deg) != (geometry.ra_deg, geometry.dec_deg,
+                                                     geometry.pa_deg):
+            self._weights = list(slit_weights(self._slits, geometry, self._maps.wcs,
+                                              self._maps.shape, frame=self._frame))
+        return self.measure()
