@@ -93,7 +93,7 @@ class QtDynamicsView(QWidget):
         cp.setLabel("bottom", "R in the disk (arcsec)")
         cp.setLabel("left", "V (km/s)")
         cp.showGrid(x=True, y=True, alpha=0.25)
-        cp.addLegend(offset=(-10, 10))
+        cp.addLegend(offset=(-10, -10))
         self.freq_plot = pg.PlotWidget(background="w")
         fp = self.freq_plot.getPlotItem()
         fp.setTitle("Orbital frequencies and the pattern speed")

@@ -62,6 +62,7 @@ class MainWindow(QMainWindow):
         splitter.addWidget(self.tabs)
         splitter.setStretchFactor(0, 3)
         splitter.setStretchFactor(1, 2)
+        splitter.setSizes([560, 470])
         self.setCentralWidget(splitter)
 
         self.geometry_panel = QtGeometryPanel(controller)

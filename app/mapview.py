@@ -137,6 +137,8 @@ class QtMapView(QWidget):
         self.kind_box.blockSignals(False)
         self._show_image()
         if maps is not None:
+            self.readout.setText("Move the cursor over the map for the sky position, "
+                                 "pixel and value; drag slits and the geometry handles")
             ny, nx = maps.shape
             self.plot.setRange(xRange=(-0.5, nx - 0.5), yRange=(-0.5, ny - 0.5),
                                padding=0.02)
@@ -168,8 +170,10 @@ class QtMapView(QWidget):
         self.colorbar.setColorMap(pg.colormap.get(cmap))
         self.colorbar.setLevels(levels)
         name = maps.name or ""
-        self.plot.setTitle(f"{name}  \u2013  {label.lower()} ({unit})" if name
-                           else f"{label} ({unit})")
+        self.plot.setTitle(f"{name}: {label.lower()}" if name else label, size="10pt")
+        self.kind_box.setItemText(self.kind_box.currentIndex(), f"{label} ({unit})")
+        self.colorbar.setToolTip(f"{label} ({unit}): drag the handles to set the "
+                                 "colour range")
 
     def _geometry_changed(self, geometry) -> None:
         maps = self._maps

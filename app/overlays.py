@@ -162,7 +162,7 @@ class GeometryOverlay:
         finally:
             self._updating = False
 
-    def _preview(self) -> None:
+    def _preview(self, handle=None) -> None:
         """Redraw while a handle is dragged (no recompute yet)."""
         if self._updating or self._frame is None:
             return
@@ -170,9 +170,9 @@ class GeometryOverlay:
         c = self.centre.pos()
         origin = np.array([c.x(), c.y()])
         pa, inc = frame.pa_deg, frame.inc_deg
-        if self.sender() is self.pa_handle:
+        if handle is self.pa_handle:
             pa = self._pa_from_handle()
-        elif self.sender() is self.inc_handle:
+        elif handle is self.inc_handle:
             inc = self._inc_from_handle()
         preview = SkyFrame(origin, frame.matrix, pa, inc, frame.pixel_scale_arcsec)
         self._draw_lines_only(preview)

@@ -58,19 +58,27 @@ def format_pattern_speed(m) -> str:
     return text
 
 
+def _asym(median: float, plus: float, minus: float) -> str:
+    """``median^{+plus}_{-minus}`` rounded at the smaller error's second digit."""
+    errors = [v for v in (plus, minus) if math.isfinite(v) and v > 0]
+    small = min(errors) if errors else (abs(median) or 1.0)
+    digits = max(0, 1 - int(math.floor(math.log10(small))))
+    return (f"{median:.{digits}f}<sup>+{plus:.{digits}f}</sup>"
+            f"<sub>\u2212{minus:.{digits}f}</sub>")
+
+
 def format_budget(budget) -> str:
     """Rich text of the combined asymmetric interval."""
     c = budget.combined
     plus, minus = c.p84 - c.median, c.median - c.p16
-    text = (f"<b>\u03a9<sub>p</sub> = {c.median:.3g}"
-            f"<sup>+{plus:.2g}</sup><sub>\u2212{minus:.2g}</sub></b>"
+    text = (f"<b>\u03a9<sub>p</sub> = {_asym(c.median, plus, minus)}</b>"
             " km s<sup>\u22121</sup> arcsec<sup>\u22121</sup>")
     if budget.distance_mpc:
         k = 1.0 / kpc_per_arcsec(budget.distance_mpc)
-        text += (f" = <b>{c.median * k:.3g}<sup>+{plus * k:.2g}</sup>"
-                 f"<sub>\u2212{minus * k:.2g}</sub></b> km s<sup>\u22121</sup>"
-                 " kpc<sup>\u22121</sup>")
-    text += f" <small>(median, 16th\u201384th percentiles, {c.n_draws} draws, seed {budget.seed})</small>"
+        text += (f" = <b>{_asym(c.median * k, plus * k, minus * k)}</b>"
+                 " km s<sup>\u22121</sup> kpc<sup>\u22121</sup>")
+    text += (f"<br><small>median and 16th\u201384th percentiles of {c.n_draws} draws "
+             f"with every source sampled together (seed {budget.seed})</small>")
     return text
 
 
@@ -88,7 +96,10 @@ class QtResultView(QWidget):
         item.showGrid(x=True, y=True, alpha=0.25)
         self.errors = pg.ErrorBarItem(pen=pg.mkPen(_POINT, width=1))
         self.points = pg.ScatterPlotItem(size=8, pen=pg.mkPen("k", width=0.5))
-        self.fit_line = pg.PlotCurveItem(pen=pg.mkPen(_FIT, width=2))
+        # an infinite line keeps its repaint region inside the plot, so the
+        # axes are not redrawn on every live update
+        self.fit_line = pg.InfiniteLine(pos=(0, 0), angle=0, pen=pg.mkPen(_FIT, width=2))
+        self.fit_line.setVisible(False)
         for it in (self.errors, self.fit_line, self.points):
             item.addItem(it)
         self.omega = QLabel(format_pattern_speed(None))
@@ -111,15 +122,18 @@ class QtResultView(QWidget):
         self.budget_table = QTableWidget(0, 5)
         self.budget_table.setHorizontalHeaderLabels(
             ["Error source", "Draws", "Median", "\u03c3 (16\u201384 %)", "Share"])
-        self.budget_table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
+        header = self.budget_table.horizontalHeader()
+        header.setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
+        header.setSectionResizeMode(0, QHeaderView.ResizeMode.ResizeToContents)
         self.budget_table.verticalHeader().setVisible(False)
         self.budget_table.setToolTip("Each error source sampled alone, then all "
                                      "together; values in km/s/arcsec")
-        self.budget_table.setMaximumHeight(170)
+        self.budget_table.setMinimumHeight(120)
+        self.budget_table.verticalHeader().setDefaultSectionSize(22)
 
         layout = QVBoxLayout(self)
         layout.setContentsMargins(2, 2, 2, 2)
-        layout.addWidget(self.plot, 3)
+        layout.addWidget(self.plot, 4)
         layout.addWidget(self.omega)
         layout.addWidget(self.warnings)
         row = QHBoxLayout()
@@ -127,7 +141,7 @@ class QtResultView(QWidget):
         row.addStretch(1)
         layout.addLayout(row)
         layout.addWidget(self.budget_text)
-        layout.addWidget(self.budget_table, 1)
+        layout.addWidget(self.budget_table, 2)
 
         self.budget_button.clicked.connect(controller.run_budget)
         controller.measurement_changed.connect(self.show_measurement)
@@ -143,7 +157,7 @@ class QtResultView(QWidget):
             self.points.clear()
             self.errors.setData(x=np.zeros(0), y=np.zeros(0), height=np.zeros(0),
                                 width=np.zeros(0))
-            self.fit_line.clear()
+            self.fit_line.setVisible(False)
             self.warnings.setText("")
             return
         it = m.integrals
@@ -160,10 +174,12 @@ class QtResultView(QWidget):
         # the eye can follow the moving point); refit them when it ends
         vb = self.plot.getPlotItem().getViewBox()
         vb.enableAutoRange(enable=not self.controller.dragging)
-        if ok.any():
-            span = np.nanmax(np.abs(x[ok])) * 1.15 or 1.0
-            xs = np.array([-span, span])
-            self.fit_line.setData(xs, m.fit.slope * xs + m.fit.intercept)
+        if ok.any() and np.isfinite(m.fit.slope):
+            self.fit_line.setPos((0.0, m.fit.intercept))
+            self.fit_line.setAngle(math.degrees(math.atan(m.fit.slope)))
+            self.fit_line.setVisible(True)
+        else:
+            self.fit_line.setVisible(False)
         self.warnings.setText("\n".join(f"\u26a0 {w}" for w in m.warnings))
 
     def show_budget(self, budget) -> None:

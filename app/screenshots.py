@@ -32,7 +32,18 @@ def _wait(app, controller, timeout_s: float = 300.0) -> None:
 
 
 def _save(widget, path: Path) -> None:
+    """Grab ``widget`` and write a small PNG (256-colour palette, which keeps
+    screenshots for the README well under 300 KB)."""
     widget.grab().save(str(path), "PNG")
+    try:
+        from PIL import Image
+    except ImportError:  # pillow comes with matplotlib; keep the full PNG
+        pass
+    else:
+        with Image.open(path) as image:
+            small = image.convert("RGB").quantize(
+                256, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE)
+        small.save(path, optimize=True)
     print(f"wrote {path} ({path.stat().st_size // 1024} KB)")
 
 

@@ -43,6 +43,13 @@ C_KMS = 299792.458
 BLOCK = 64
 
 
+def _start_aa(n_chan: int) -> float:
+    """4750 A (the full-size cube), or a start that keeps H-alpha inside."""
+    if LAM0_AA + DLAM_AA * n_chan > 6700.0:
+        return LAM0_AA
+    return 6600.0 - DLAM_AA * n_chan / 2
+
+
 def _header(n_chan: int) -> fits.Header:
     header = fits.Header()
     header["SIMPLE"] = True
@@ -54,7 +61,8 @@ def _header(n_chan: int) -> fits.Header:
     header["CRPIX1"], header["CRPIX2"] = NX / 2 + 0.5, NY / 2 + 0.5
     header["CDELT1"], header["CDELT2"] = -0.2 / 3600, 0.2 / 3600
     header["CTYPE3"], header["CUNIT3"] = "AWAV", "Angstrom"
-    header["CRVAL3"], header["CDELT3"], header["CRPIX3"] = LAM0_AA, DLAM_AA, 1.0
+    header["CRVAL3"], header["CDELT3"] = _start_aa(n_chan), DLAM_AA
+    header["CRPIX3"] = 1.0
     header["BUNIT"] = "1e-20 erg/(s cm2 Angstrom)"
     header["OBJECT"] = "LBDP-011"
     header["PSF_FWHM"] = 0.8
@@ -79,8 +87,8 @@ def build_cube(path: Path, n_chan: int) -> None:
             handle.write(header.tostring().encode("ascii"))
             for start in range(0, n_chan, BLOCK):
                 stop = min(start + BLOCK, n_chan)
-                lam = (LAM0_AA + DLAM_AA * np.arange(start, stop,
-                                                     dtype=np.float32))
+                lam = (_start_aa(n_chan)
+                       + DLAM_AA * np.arange(start, stop, dtype=np.float32))
                 block = rng.standard_normal((stop - start, NY, NX),
                                             dtype=np.float32)
                 block += 5.0
@@ -150,7 +158,7 @@ def main() -> None:
     line_vsys = MomentSettings(line="Halpha", vsys_kms=VSYS_KMS,
                                window_halfwidth_kms=500.0)
     halpha_air = float(vacuum_to_air(6564.608))
-    lam = LAM0_AA + DLAM_AA * np.arange(args.channels)
+    lam = _start_aa(args.channels) + DLAM_AA * np.arange(args.channels)
     v_all = C_KMS * (lam / halpha_air - 1)  # rough, for choosing the window
     margin = 40 * DLAM_AA / halpha_air * C_KMS
     wide = MomentSettings(line="Halpha", vsys_kms=float(v_all.mean()),

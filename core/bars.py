@@ -94,6 +94,9 @@ class FourierProfile:
         Disk-plane azimuth of the m = 2 maximum, degrees from the receding
         line of nodes, in (-90, 90].
     n_pixels : numpy.ndarray
+    a2_err : numpy.ndarray or None
+        1-sigma noise of ``a2`` from the intensity errors,
+        ``sqrt(sum sigma_I^2 / 2) / A0`` (derived; None without errors).
     """
 
     r_arcsec: np.ndarray
@@ -103,6 +106,7 @@ class FourierProfile:
     a6: np.ndarray
     phase2_deg: np.ndarray
     n_pixels: np.ndarray
+    a2_err: np.ndarray | None = None
 
     @property
     def bar_interbar(self) -> np.ndarray:
@@ -114,12 +118,14 @@ class FourierProfile:
 def fourier_profile(intensity, wcs, geometry: DiskGeometry, *,
                     ring_width_arcsec: float, r_max_arcsec: float | None = None,
                     min_pixels: int = 16, intensity_err=None,
-                    min_snr: float = 3.0) -> FourierProfile:
+                    min_snr: float = 5.0) -> FourierProfile:
     """Fourier amplitudes and m = 2 phase in rings of the disk plane.
 
     Every pixel is mapped to the disk plane with the geometry; pixels of
     equal sky area have equal disk area, so plain sums over a ring
-    approximate the azimuthal integrals ``A_m = |sum I exp(i m theta)|``.
+    approximate the azimuthal integrals ``A_m = |sum I exp(i m theta)|``;
+    the azimuthal-mean profile (interpolated in R) is subtracted from I in
+    the m > 0 sums, which removes the pixel-sampling bias of small rings.
     Rings with fewer than ``min_pixels`` pixels, with an empty sector (of
     12) or, when ``intensity_err`` is given, with a mean per-pixel
     signal-to-noise below ``min_snr`` are dropped (noise and field edges
@@ -138,6 +144,17 @@ def fourier_profile(intensity, wcs, geometry: DiskGeometry, *,
         noise = np.asarray(intensity_err, dtype=float)[good]
     r_max = r_max_arcsec or float(R.max())
     edges = np.arange(0.0, r_max + 1e-9, ring_width_arcsec)
+    # axisymmetric model: the azimuthal mean profile, interpolated in R on
+    # a grid of half rings; it is subtracted before the m > 0 sums so that
+    # the uneven azimuthal sampling of a ring of pixels across a radial
+    # gradient does not create spurious m = 2 power
+    fine = np.arange(0.0, r_max + ring_width_arcsec, 0.5 * ring_width_arcsec)
+    idx = np.digitize(R, fine) - 1
+    counts = np.bincount(idx, minlength=fine.size)
+    sums = np.bincount(idx, weights=img, minlength=fine.size)
+    have = counts > 0
+    r_mean = np.bincount(idx, weights=R, minlength=fine.size)[have] / counts[have]
+    axisym = np.interp(R, r_mean, sums[have] / counts[have])
     rows = []
     for r_in, r_out in zip(edges[:-1], edges[1:]):
         sel = (R >= r_in) & (R < r_out)
@@ -151,22 +168,27 @@ def fourier_profile(intensity, wcs, geometry: DiskGeometry, *,
         a0 = ii.sum()
         if not a0 > 0:
             continue
-        if noise is not None and a0 / sel.sum() < min_snr * np.nanmedian(noise[sel]):
-            continue
+        a2_err = math.nan
+        if noise is not None:
+            if a0 / sel.sum() < min_snr * np.nanmedian(noise[sel]):
+                continue
+            a2_err = math.sqrt(0.5 * np.nansum(noise[sel] ** 2)) / a0
+        resid = ii - axisym[sel]
         amps = []
         for m in (2, 4, 6):
-            c = np.sum(ii * np.cos(m * th))
-            s = np.sum(ii * np.sin(m * th))
+            c = np.sum(resid * np.cos(m * th))
+            s = np.sum(resid * np.sin(m * th))
             amps.append((math.hypot(c, s) / a0, math.atan2(s, c) / m))
         rows.append((0.5 * (r_in + r_out), a0 / sel.sum(), amps[0][0],
                      amps[1][0], amps[2][0], math.degrees(amps[0][1]),
-                     int(sel.sum())))
+                     int(sel.sum()), a2_err))
     if len(rows) < 4:
         raise DataContentError("fewer than 4 usable rings for the Fourier "
                                "decomposition of the intensity map")
     cols = [np.array(c) for c in zip(*rows)]
     return FourierProfile(cols[0], cols[1], cols[2], cols[3], cols[4],
-                          cols[5], cols[6].astype(int))
+                          cols[5], cols[6].astype(int),
+                          None if noise is None else cols[7])
 
 
 @dataclass(frozen=True)
@@ -240,15 +262,21 @@ def estimate_bar_length(maps, geometry: DiskGeometry, *,
     r = prof.r_arcsec[use]
     a2 = prof.a2[use]
     ph = prof.phase2_deg[use]
-    k = int(np.argmax(a2))
-    if a2[k] < 0.05:
-        raise FitError(f"no bar found: A2/A0 peaks at only {a2[k]:.3f}",
+    a2_err = (np.zeros_like(a2) if prof.a2_err is None
+              else prof.a2_err[use])
+    # only m = 2 amplitudes well above their noise count as structure
+    significant = a2 > np.maximum(0.05, 5.0 * a2_err)
+    if not significant.any():
+        raise FitError(f"no bar found: A2/A0 peaks at only {a2.max():.3f} "
+                       "(needs > 0.05 and 5 sigma)",
                        hint="give the bar length by hand")
+    k = int(np.argmax(np.where(significant, a2, -np.inf)))
     estimates = {"A2 peak": float(r[k])}
-    # phase constancy
+    # phase constancy (noise-dominated rings end the bar)
     dev = np.abs(_wrap90(ph - ph[k]))
     j = k
-    while j + 1 < r.size and dev[j + 1] <= phase_tolerance_deg:
+    while (j + 1 < r.size and dev[j + 1] <= phase_tolerance_deg
+           and a2[j + 1] > 3.0 * a2_err[j + 1]):
         j += 1
     estimates["phase"] = float(r[j] + 0.5 * width) if j + 1 < r.size else float(r[j])
     # bar / interbar

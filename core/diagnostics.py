@@ -41,8 +41,10 @@ INCLINATION_RANGE_DEG = (15.0, 70.0)
 #: Fewest slits for a meaningful line fit (common practice).
 MIN_SLITS = 3
 
-#: Slits with ``|<V>| / sigma(<V>)`` and ``|<X>| / sigma(<X>)`` both below
-#: this are noise-dominated (common practice).
+#: Slits whose integrated flux ``int S dX`` has a signal-to-noise ratio below
+#: this are noise-dominated (common practice). The flux, not ``<X>`` or
+#: ``<V>``, is tested: a slit through the centre has ``<X> ~ <V> ~ 0`` by
+#: symmetry and is still a good point of the fit.
 MIN_SLIT_SNR = 3.0
 
 #: Tracers that get the gas caveat (Borodina et al. 2023, MNRAS 524, 3437:
@@ -58,7 +60,7 @@ def check_measurement(measurement: TWMeasurement, tracer: str | None = None, *,
     ------
     * inclination outside 15-70 deg (Zou et al. 2019) -> GeometryWarning;
     * fewer than 3 slits in the fit (common practice) -> DataQualityWarning;
-    * slits whose ``<X>`` and ``<V>`` are both below 3 sigma (common
+    * slits whose flux has a signal-to-noise ratio below 3 (common
       practice) -> DataQualityWarning;
     * truncated slits -> DataQualityWarning;
     * gas tracers (Borodina et al. 2023) -> TracerWarning.
@@ -84,13 +86,11 @@ def check_measurement(measurement: TWMeasurement, tracer: str | None = None, *,
                     DataQualityWarning))
     ig = measurement.integrals
     with np.errstate(divide="ignore", invalid="ignore"):
-        snr_x = np.abs(ig.x_mean_arcsec) / ig.x_err_arcsec
-        snr_v = np.abs(ig.v_mean_kms) / ig.v_err_kms
-    noisy = np.flatnonzero(measurement.used & (snr_x < MIN_SLIT_SNR)
-                           & (snr_v < MIN_SLIT_SNR))
+        snr = ig.flux / ig.flux_err
+    noisy = np.flatnonzero((np.abs(ig.flux) > 0) & (snr < MIN_SLIT_SNR))
     if noisy.size:
         out.append((f"slit(s) {', '.join(str(k) for k in noisy)} are dominated by "
-                    f"noise (<X> and <V> below {MIN_SLIT_SNR:g} sigma)",
+                    f"noise (flux signal-to-noise below {MIN_SLIT_SNR:g})",
                     DataQualityWarning))
     cut = np.flatnonzero(measurement.used & ig.truncated)
     if cut.size:

@@ -80,6 +80,15 @@ def _new_figure(width_in: float, height_in: float):
     return Figure(figsize=(width_in, height_in), layout="constrained")
 
 
+def _finish(fig):
+    """Run the layout once and freeze it, so every file of a figure (and
+    every later save) has the same geometry."""
+    with _style():
+        fig.draw_without_rendering()
+    fig.set_layout_engine("none")
+    return _finish(fig)
+
+
 def _omega_unit(distance_mpc: float | None) -> tuple[float, str]:
     """Factor from km/s/arcsec and the axis label of a pattern speed."""
     from .geometry import kpc_per_arcsec
@@ -169,7 +178,7 @@ def map_figure(maps, geometry, slits, *, used=None, title: str = ""):
             bar.set_label(label)
         if title:
             fig.suptitle(title)
-    return fig
+    return _finish(fig)
 
 
 # -- <V> against <X> ------------------------------------------------------------
@@ -220,7 +229,7 @@ def fit_figure(measurement, *, title: str = ""):
         ax.legend(loc="lower right")
         if title:
             ax.set_title(title)
-    return fig
+    return _finish(fig)
 
 
 # -- convergence ------------------------------------------------------------------
@@ -254,7 +263,7 @@ def convergence_figure(curves, *, geometry=None, title: str = ""):
             ax.set_xlabel("slit half-length (arcsec)")
         if title:
             fig.suptitle(title)
-    return fig
+    return _finish(fig)
 
 
 # -- PA sensitivity -------------------------------------------------------------
@@ -286,7 +295,7 @@ def pa_figure(sensitivity, *, geometry=None, title: str = ""):
         ax.legend(loc="best")
         if title:
             ax.set_title(title)
-    return fig
+    return _finish(fig)
 
 
 # -- rotation curve and resonances ------------------------------------------------
@@ -383,7 +392,7 @@ def rotation_figure(curve_fit, *, omega_p=None, resonances=None,
                       framealpha=0.85, edgecolor="none")
         if title:
             top.set_title(title)
-    return fig
+    return _finish(fig)
 
 
 # -- saving -----------------------------------------------------------------------

@@ -15,7 +15,8 @@ any value of their own (:meth:`GeometryEstimate.apply_to`):
   A&A 223, 47; Schoenmakers, Franx & de Zeeuw 1997, MNRAS 292, 349, with the
   arctan curve of Courteau 1997, AJ 114, 2402). Errors come from the
   least-squares covariance scaled by the reduced chi^2, then by
-  ``sqrt(N_pix per beam)`` for correlated pixels (common practice). Bars and
+  ``sqrt(N_pix per beam)`` when the noise is correlated over the beam
+  (radio data; common practice). Bars and
   spiral streaming bias the kinematic PA; compare with the photometric PA.
   The inclination is poorly constrained kinematically below i ~ 40 degrees
   (it is degenerate with V_c; from memory): prefer the photometric one there.
@@ -192,9 +193,13 @@ def _reference(maps, center):
     return float(world.ra.deg), float(world.dec.deg)
 
 
-def _beam_factor(maps, pix: float) -> float:
+def _beam_factor(maps, pix: float, correlated: bool | None) -> float:
+    """``sqrt(pixels per beam)`` when the noise is correlated over the PSF
+    (default: for radio tracers), else 1."""
+    if correlated is None:
+        correlated = maps.tracer in ("HI", "CO", "molecular gas")
     psf = maps.psf_fwhm_arcsec
-    if not psf:
+    if not psf or not correlated:
         return 1.0
     return math.sqrt(max(1.0, _BEAM_AREA_PER_FWHM2 * psf**2 / pix**2))
 
@@ -205,11 +210,13 @@ def _beam_factor(maps, pix: float) -> float:
 
 def intensity_centroid(maps, *, start=None, aperture_arcsec: float | None = None,
                        n_iter: int = 50) -> GeometryEstimate:
-    """Flux-weighted centroid within a circular aperture, iterated.
+    """Flux-weighted centroid within a Gaussian-windowed aperture, iterated.
 
     Starts from ``start`` (``(ra, dec)`` or a geometry) or from the
-    brightest pixel, and moves the aperture to the centroid until the shift
-    is below 0.01 pixel. The error combines the photon noise of the
+    brightest pixel, and moves the window (Gaussian of sigma = half the
+    aperture radius, truncated at twice the radius) to the centroid until
+    the shift is below 0.01 pixel; a smooth window avoids the pixelisation
+    bias of a hard aperture (common practice). The error combines the photon noise of the
     centroid (``sigma_x^2 = sum (x - xbar)^2 sigma_I^2 / F^2`` when the map
     has errors) with the shift between apertures of 1x and 1.5x the radius.
 
@@ -242,8 +249,11 @@ def intensity_centroid(maps, *, start=None, aperture_arcsec: float | None = None
     def centroid(radius):
         ce, cn = 0.0, 0.0
         for _ in range(n_iter):
-            sel = np.hypot(east - ce, north - cn) <= radius
-            f = flux[sel]
+            d2 = (east - ce) ** 2 + (north - cn) ** 2
+            sel = d2 <= (2.0 * radius) ** 2
+            # Gaussian window of sigma = radius / 2 (a windowed centroid: a
+            # hard-edged aperture on a pixel grid biases the result)
+            f = flux[sel] * np.exp(-0.5 * d2[sel] / (0.5 * radius) ** 2)
             total = f.sum()
             if sel.sum() < 3 or not total > 0:
                 raise DataContentError("no positive flux in the centring "
@@ -256,7 +266,8 @@ def intensity_centroid(maps, *, start=None, aperture_arcsec: float | None = None
                 break
         noise = 0.0
         if var is not None:
-            v = var[sel]
+            win = np.exp(-0.5 * d2[sel] / (0.5 * radius) ** 2)
+            v = var[sel] * win**2
             noise = math.sqrt(0.5 * (np.sum((east[sel] - ce) ** 2 * v)
                                      + np.sum((north[sel] - cn) ** 2 * v))) / total
         return ce, cn, noise, int(sel.sum())
@@ -267,8 +278,8 @@ def intensity_centroid(maps, *, start=None, aperture_arcsec: float | None = None
     ra, dec = _offset_center(ra0, dec0, ce, cn)
     return GeometryEstimate(
         ra_deg=ra, dec_deg=dec, center_err_arcsec=err,
-        method=(f"flux-weighted centroid in a {aperture:.3g} arcsec aperture, "
-                "iterated (error: photon noise and the shift between 1x and "
+        method=(f"flux-weighted centroid in a {aperture:.3g} arcsec Gaussian "
+                "window, iterated (error: photon noise and the shift between 1x and "
                 "1.5x apertures)"), n_pixels=n)
 
 
@@ -298,7 +309,9 @@ def kinematic_geometry(maps, *, initial: DiskGeometry | None = None,
                        center=None, fit_center: bool = True,
                        fit_inclination: bool = True,
                        r_max_arcsec: float | None = None,
-                       clip_sigma: float = 4.0) -> GeometryEstimate:
+                       r_min_arcsec: float | None = None,
+                       clip_sigma: float = 4.0,
+                       pixels_correlated: bool | None = None) -> GeometryEstimate:
     """Fit a thin disk with an arctan rotation curve to the velocity map.
 
     Parameters
@@ -315,9 +328,15 @@ def kinematic_geometry(maps, *, initial: DiskGeometry | None = None,
         Free the centre / the inclination.
     r_max_arcsec : float, optional
         Only pixels within this radius of the starting centre are used.
+    r_min_arcsec : float, optional
+        Pixels within this radius of the starting centre are left out, e.g.
+        the bar, whose streaming biases the PA by a few degrees.
     clip_sigma : float
         After a first fit, pixels with residuals beyond this many robust
         standard deviations (1.4826 MAD) are dropped and the fit repeated.
+    pixels_correlated : bool, optional
+        Inflate errors by ``sqrt(N_pix per beam)`` (default: for radio
+        tracers, whose noise is correlated over the beam).
 
     Raises
     ------
@@ -346,9 +365,14 @@ def kinematic_geometry(maps, *, initial: DiskGeometry | None = None,
     east, north = grid.east_arcsec[good], grid.north_arcsec[good]
     v = vel[good]
     sig = np.ones_like(v) if err is None else err[good]
-    if r_max_arcsec:
-        inside = np.hypot(east, north) <= r_max_arcsec
+    if r_max_arcsec or r_min_arcsec:
+        dist = np.hypot(east, north)
+        inside = ((dist <= r_max_arcsec) if r_max_arcsec else True) & (
+            (dist >= r_min_arcsec) if r_min_arcsec else True)
         east, north, v, sig = east[inside], north[inside], v[inside], sig[inside]
+        if v.size < 20:
+            raise DataContentError("too few velocity pixels between r_min and "
+                                   "r_max", value=int(v.size))
     r_ext = float(np.percentile(np.hypot(east, north), 90))
 
     # starting values: PA from the velocity gradient of a plane fit
@@ -404,7 +428,7 @@ def kinematic_geometry(maps, *, initial: DiskGeometry | None = None,
                        "constrained)") from exc
     scale = chi2_red if err is None else max(1.0, chi2_red)
     perr = np.sqrt(np.clip(np.diag(cov), 0, None) * scale) * _beam_factor(
-        maps, grid.pixel_scale_arcsec)
+        maps, grid.pixel_scale_arcsec, pixels_correlated)
     p = list(fit.x)
     k = 0
     dx = dy = 0.0
@@ -440,8 +464,10 @@ def kinematic_geometry(maps, *, initial: DiskGeometry | None = None,
         vsys_kms=vsys, vsys_err_kms=vsys_err,
         method=("kinematic thin-disk fit (first-order harmonic model, "
                 "Begeman 1989; Schoenmakers et al. 1997; arctan curve, "
-                "Courteau 1997); errors: covariance x reduced chi^2 x "
-                "sqrt(pixels per beam)"),
+                "Courteau 1997); errors: covariance x reduced chi^2"
+                + (" x sqrt(pixels per beam)" if _beam_factor(
+                    maps, grid.pixel_scale_arcsec, pixels_correlated) > 1
+                   else "")),
         reduced_chi2=chi2_red, n_pixels=n,
         extra={"v_c_kms": abs(vc), "r_t_arcsec": rt,
                "v_c_err_kms": float(perr[k + 1]),

@@ -312,6 +312,8 @@ def gauss_hermite_fourier(k_per_kms, v0_kms: float, sigma_kms: float,
     """Fourier transform ``int L(v) exp(-i k v) dv`` of the LOSVD (exact)."""
     k = np.asarray(k_per_kms, float)
     w = k * sigma_kms
+    if not any(h):
+        return np.exp(-1j * k * v0_kms - 0.5 * w * w)
     c = _hermite_coeffs(tuple(h)).astype(complex)
     c *= (-1j) ** np.arange(c.size)
     return np.exp(-1j * k * v0_kms - 0.5 * w * w) * _herm.hermval(w, c)

@@ -42,14 +42,17 @@ Streaming
 The window is read in blocks of ``chunk_channels`` channels from the
 (memory-mapped) cube, each block extended by a halo of ``smooth_channels//2
 + dilation_channels`` channels so that smoothing and dilation see the same
-neighbours whatever the block size; per-block sums are accumulated in
-float64 with one matrix product per block. The result does not depend on
-the block size beyond floating-point rounding.
+neighbours whatever the block size (the mask is identical for any block
+size). Each block is read once into native float32 and summed with one
+matrix product in float32 (float64 for float64 cubes); the per-block sums
+are accumulated in float64. The result therefore depends on the block size
+only at the level of float32 rounding (~1e-7 relative). Memory: a few
+blocks of ``chunk_channels`` (default about 32 MiB each) plus the sideband
+channels used for the noise.
 """
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass, fields
 
 import astropy.units as u
@@ -57,7 +60,8 @@ import numpy as np
 
 from .coords import pixel_scale_arcsec
 from .dataset import Cube, MapSet
-from .errors import DataContentError, RecipeError, SpectralAxisError
+from .errors import (DataContentError, GyrometerError, RecipeError,
+                     SpectralAxisError)
 from .progress import CancelFlag, ProgressCallback, check_cancel, report
 from .spectral import channel_velocities
 
@@ -173,8 +177,8 @@ def _rest_argument(settings: MomentSettings):
 
 
 def _gaussian_kernel(sigma_pix: float) -> np.ndarray:
-    """Normalised Gaussian taps, truncated at 3 sigma."""
-    radius = max(1, int(3.0 * sigma_pix + 0.5))
+    """Normalised Gaussian taps, truncated at 2 sigma (enough for a mask)."""
+    radius = max(1, int(2.0 * sigma_pix + 0.5))
     x = np.arange(-radius, radius + 1, dtype=float)
     kernel = np.exp(-0.5 * (x / sigma_pix) ** 2)
     return kernel / kernel.sum()
@@ -187,18 +191,30 @@ def _index(ndim: int, axis: int, part: slice) -> tuple:
 
 
 def _correlate(a: np.ndarray, kernel: np.ndarray, axis: int) -> np.ndarray:
-    """Correlate with a symmetric odd kernel along ``axis``; zeros beyond
-    the edges. Shifted-slice sums: contiguous, vectorised, no copies of the
-    block beyond the output."""
+    """Correlate with a symmetric odd kernel along ``axis`` (1 or 2 of a
+    3D block); zeros beyond the edges. Shifted-slice sums: contiguous and
+    vectorised. Along the last axis the rows are padded with ``radius``
+    zeros and shifted as one flat array, so that no per-row loop is
+    needed (the padding supplies the zeros beyond each row's ends)."""
     radius = kernel.size // 2
-    out = a * a.dtype.type(kernel[radius])
+    taps = [a.dtype.type(k) for k in kernel]
+    if axis == a.ndim - 1:
+        n = a.shape[-1]
+        padded = np.zeros(a.shape[:-1] + (n + radius,), a.dtype)
+        padded[..., :n] = a
+        flat = padded.reshape(-1)
+        out = flat * taps[radius]
+        for j in range(1, radius + 1):
+            out[j:] += taps[radius + j] * flat[:-j]
+            out[:-j] += taps[radius - j] * flat[j:]
+        return out.reshape(padded.shape)[..., :n]
+    out = a * taps[radius]
     n = a.shape[axis]
     for j in range(1, min(radius, n - 1) + 1):
-        weight = a.dtype.type(kernel[radius + j])
         head = _index(a.ndim, axis, slice(j, None))
         tail = _index(a.ndim, axis, slice(None, -j))
-        out[head] += weight * a[tail]
-        out[tail] += weight * a[head]
+        out[head] += taps[radius + j] * a[tail]
+        out[tail] += taps[radius - j] * a[head]
     return out
 
 
@@ -220,9 +236,21 @@ def _boxcar0(a: np.ndarray, width: int, scale: float) -> np.ndarray:
 
 def _grow(mask: np.ndarray, reach: int, axes: tuple[int, ...]) -> np.ndarray:
     """Binary dilation by ``reach`` elements along each of ``axes``
-    (a box structuring element); nothing beyond the edges."""
+    (a box structuring element); nothing beyond the edges. The last axis
+    is handled as one flat array with ``reach`` False pads per row."""
     for axis in axes:
         src = mask
+        if axis == src.ndim - 1:
+            n = src.shape[-1]
+            padded = np.zeros(src.shape[:-1] + (n + reach,), bool)
+            padded[..., :n] = src
+            flat = padded.reshape(-1)
+            grown = flat.copy()
+            for j in range(1, reach + 1):
+                grown[j:] |= flat[:-j]
+                grown[:-j] |= flat[j:]
+            mask = grown.reshape(padded.shape)[..., :n]
+            continue
         mask = mask.copy()
         for j in range(1, min(reach, src.shape[axis] - 1) + 1):
             head = _index(src.ndim, axis, slice(j, None))
@@ -233,17 +261,47 @@ def _grow(mask: np.ndarray, reach: int, axes: tuple[int, ...]) -> np.ndarray:
 
 
 class _Smoother:
-    """Separable smoothing: a spectral boxcar of ``n_channels`` channels and
-    a spatial Gaussian; :meth:`variance` gives the variance of the smoothed
-    data for independent voxels (squared kernel weights)."""
+    """Smoothing for the signal mask, per channel block.
 
-    def __init__(self, spatial_sigma_pix: float, n_channels: int) -> None:
-        self.kernel = (_gaussian_kernel(spatial_sigma_pix)
-                       if spatial_sigma_pix > 0 else None)
+    The block is first averaged over ``bin x bin`` spaxels (``bin`` = half
+    the smoothing FWHM, at least 1), then smoothed by a spectral boxcar of
+    ``n_channels`` channels and, on the binned grid, by a Gaussian that
+    brings the total spatial smoothing to about ``fwhm_pix`` (FWHMs added in
+    quadrature, the box of ``bin`` pixels counting as FWHM ``bin``). Binning
+    first keeps the cost of the mask near one pass over the data.
+    :meth:`variance` gives the variance of the smoothed data for
+    independent voxels (squared weights); :meth:`upsample` takes a binned
+    mask back to full resolution.
+    """
+
+    def __init__(self, fwhm_pix: float, n_channels: int) -> None:
+        self.bin = max(1, int(fwhm_pix // 2))
+        residual_fwhm = np.sqrt(max(fwhm_pix ** 2 - self.bin ** 2, 0.0))
+        sigma = residual_fwhm / np.sqrt(8.0 * np.log(2.0)) / self.bin
+        self.kernel = _gaussian_kernel(sigma) if sigma >= 0.3 else None
         self.n_channels = n_channels
 
+    def _binned(self, block: np.ndarray, scale: float) -> np.ndarray:
+        b = self.bin
+        if b == 1:
+            return block if scale == 1.0 else block * block.dtype.type(scale)
+        nb, ny, nx = block.shape
+        big_y, big_x = -(-ny // b) * b, -(-nx // b) * b
+        if (big_y, big_x) != (ny, nx):
+            padded = np.zeros((nb, big_y, big_x), block.dtype)
+            padded[:, :ny, :nx] = block
+            block = padded
+        rows = block[:, 0::b]
+        for i in range(1, b):
+            rows = rows + block[:, i::b]
+        out = rows[:, :, 0::b]
+        for j in range(1, b):
+            out = out + rows[:, :, j::b]
+        out *= out.dtype.type(scale)
+        return out
+
     def data(self, block: np.ndarray) -> np.ndarray:
-        out = block
+        out = self._binned(block, 1.0 / self.bin ** 2)
         if self.n_channels > 1:
             out = _boxcar0(out, self.n_channels, 1.0 / self.n_channels)
         if self.kernel is not None:
@@ -251,13 +309,24 @@ class _Smoother:
         return out
 
     def variance(self, block: np.ndarray) -> np.ndarray:
-        out = block
+        out = self._binned(block, 1.0 / self.bin ** 4)
         if self.n_channels > 1:
             out = _boxcar0(out, self.n_channels, 1.0 / self.n_channels ** 2)
         if self.kernel is not None:
             k2 = self.kernel ** 2
             out = _correlate(_correlate(out, k2, 1), k2, 2)
         return out
+
+    def upsample(self, mask: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
+        b = self.bin
+        if b == 1:
+            return mask
+        nb, ny, nx = shape
+        out = np.empty((nb, mask.shape[1] * b, mask.shape[2] * b), bool)
+        for i in range(b):
+            for j in range(b):
+                out[:, i::b, j::b] = mask
+        return out[:, :ny, :nx]
 
 
 def _read(cube: Cube, start: int, stop: int, variance: bool = False
@@ -271,10 +340,39 @@ def _read(cube: Cube, start: int, stop: int, variance: bool = False
     return np.array(block, dtype=dtype, order="C", copy=True)
 
 
+def _nanmedian0(values: np.ndarray) -> np.ndarray:
+    """Median along axis 0 ignoring NaN (NaN where a column has none).
+
+    Works on the transposed, contiguous columns: a partial sort
+    (:func:`numpy.partition`) when nothing is NaN, else a full sort with
+    NaN last and the middle of each column's finite values. Much faster
+    than :func:`numpy.nanmedian` for many short columns.
+    """
+    n = values.shape[0]
+    columns = np.ascontiguousarray(values.reshape(n, -1).T)
+    finite = np.isfinite(columns)
+    if finite.all():
+        low, high = (n - 1) // 2, n // 2
+        part = np.partition(columns, (low, high), axis=1)
+        median = 0.5 * (part[:, low].astype(np.float64)
+                        + part[:, high].astype(np.float64))
+        return median.reshape(values.shape[1:])
+    columns = np.sort(columns, axis=1)  # NaN last
+    n_finite = np.count_nonzero(finite, axis=1)
+    low = np.maximum((n_finite - 1) // 2, 0)
+    high = np.maximum(n_finite // 2, 0)
+    rows = np.arange(columns.shape[0])
+    median = 0.5 * (columns[rows, low].astype(np.float64)
+                    + columns[rows, high].astype(np.float64))
+    median[n_finite == 0] = np.nan
+    return median.reshape(values.shape[1:])
+
+
 def _mad_sigma(values: np.ndarray) -> np.ndarray:
-    """Robust standard deviation along axis 0 (NaN-aware)."""
-    centre = np.nanmedian(values, axis=0)
-    return _MAD_TO_SIGMA * np.nanmedian(np.abs(values - centre), axis=0)
+    """Robust standard deviation along axis 0 (NaN-aware):
+    1.4826 x median absolute deviation (normal distribution)."""
+    centre = _nanmedian0(values).astype(values.dtype)
+    return _MAD_TO_SIGMA * _nanmedian0(np.abs(values - centre[None]))
 
 
 class _Continuum:
@@ -289,9 +387,7 @@ class _Continuum:
         for band in (lower, upper):
             if band is None:
                 continue
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN
-                level = np.nanmedian(_read(cube, *band), axis=0)
+            level = _nanmedian0(_read(cube, *band))
             self.points.append((0.5 * (band[0] + band[1] - 1),
                                 np.nan_to_num(level)))
 
@@ -322,17 +418,16 @@ def _window(v_kms: np.ndarray, settings: MomentSettings, path: str
     return int(inside[0]), int(inside[-1]) + 1
 
 
-def _spatial_sigma(cube: Cube, settings: MomentSettings) -> float:
-    fwhm = settings.smooth_fwhm_pix
-    if fwhm is None:
-        fwhm = 2.0
-        if cube.psf_fwhm_arcsec:
-            try:
-                scale = float(pixel_scale_arcsec(cube.wcs))
-                fwhm = max(1.5, cube.psf_fwhm_arcsec / scale)
-            except Exception:  # no usable pixel scale: keep the default
-                fwhm = 2.0
-    return fwhm / np.sqrt(8.0 * np.log(2.0))
+def _smoothing_fwhm_pix(cube: Cube, settings: MomentSettings) -> float:
+    """Spatial smoothing FWHM of the mask, pixels."""
+    if settings.smooth_fwhm_pix is not None:
+        return float(settings.smooth_fwhm_pix)
+    if cube.psf_fwhm_arcsec:
+        try:
+            return max(1.5, cube.psf_fwhm_arcsec / pixel_scale_arcsec(cube.wcs))
+        except GyrometerError:  # no usable pixel scale: keep the default
+            pass
+    return 2.0
 
 
 def compute_moments(cube: Cube, settings: MomentSettings | None = None, *,
@@ -389,7 +484,7 @@ def compute_moments(cube: Cube, settings: MomentSettings | None = None, *,
     subtract = settings.continuum == "sidebands" or (
         settings.continuum == "auto" and family in ("WAVE", "AWAV"))
     continuum = _Continuum(lower, upper, cube, subtract)
-    smoother = _Smoother(_spatial_sigma(cube, settings),
+    smoother = _Smoother(_smoothing_fwhm_pix(cube, settings),
                          settings.smooth_channels)
     use_mask = settings.mask == "smooth"
 
@@ -399,17 +494,18 @@ def compute_moments(cube: Cube, settings: MomentSettings | None = None, *,
     if bands:
         raw, smooth = [], []
         for band in bands:
-            block = _read(cube, *band) - continuum(*band)
+            block = _read(cube, *band)
+            if continuum.points:
+                block -= continuum(*band).astype(block.dtype)
             raw.append(block)
             if use_mask:
-                filled = np.where(np.isfinite(block), block, 0.0)
-                smooth.append(np.where(np.isfinite(block),
-                                       smoother.data(filled), np.nan))
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN spaxels
-            sigma_raw = _mad_sigma(np.concatenate(raw))
-            if use_mask:
-                sigma_smooth = _mad_sigma(np.concatenate(smooth))
+                finite = np.isfinite(block)
+                filled = np.where(finite, block, 0.0)
+                covered = smoother.data(finite.astype(filled.dtype)) > 0
+                smooth.append(np.where(covered, smoother.data(filled), np.nan))
+        sigma_raw = _mad_sigma(np.concatenate(raw))
+        if use_mask:
+            sigma_smooth = _mad_sigma(np.concatenate(smooth))
         del raw, smooth
     has_variance = cube.variance is not None
     if use_mask and sigma_smooth is None and not has_variance:
@@ -443,29 +539,49 @@ def compute_moments(cube: Cube, settings: MomentSettings | None = None, *,
         block = _read(cube, r0, r1)
         if continuum.points:
             block -= continuum(r0, r1).astype(block.dtype)
-        finite = np.isfinite(block)
-        np.copyto(block, 0, where=~finite)  # NaN -> 0, in place
-        inner = slice(c0 - r0, c1 - r0)
-        values = block[inner].reshape(n, -1)  # a view: zeroed in place below
-        keep = finite[inner].reshape(n, -1)
-        any_finite |= np.logical_or.reduce(keep, axis=0)
+        u_kms = v_kms[c0:c1] - v_ref
+        dv = dv_kms[c0:c1]
+        # per-block sums in the block's precision, accumulated in float64
+        weights = np.stack([dv, dv * u_kms, dv * u_kms ** 2]).astype(block.dtype)
         if use_mask:
+            finite = np.isfinite(block)
+            np.copyto(block, 0, where=~finite)  # NaN -> 0, in place
+            inner = slice(c0 - r0, c1 - r0)
+            values = block[inner].reshape(n, -1)  # a view, zeroed in place
+            keep = finite[inner].reshape(n, -1)
+            any_finite |= np.logical_or.reduce(keep, axis=0)
             signal = _signal_mask(block, smoother, settings, sigma_smooth,
                                   cube, (r0, r1), (w0, w1))
             keep = keep & signal[inner].reshape(n, -1)
             np.copyto(values, 0, where=~keep)
-        any_valid |= np.logical_or.reduce(keep, axis=0)
-        u_kms = v_kms[c0:c1] - v_ref
-        dv = dv_kms[c0:c1]
-        # per-block sums in the block's precision, accumulated in float64
-        weights = np.stack([dv, dv * u_kms, dv * u_kms ** 2]).astype(values.dtype)
-        sums += weights @ values
+            any_valid |= np.logical_or.reduce(keep, axis=0)
+            sums += weights @ values
+        else:
+            # no mask: sum first, then redo only the spaxels that met a NaN
+            values = block.reshape(n, -1)
+            partial = weights @ values
+            bad = ~np.isfinite(partial).all(axis=0)
+            keep = None
+            if bad.any():
+                cols = np.flatnonzero(bad)
+                sub = values[:, cols]
+                fin = np.isfinite(sub)
+                sub[~fin] = 0
+                partial[:, cols] = weights @ sub
+                any_finite[cols] |= fin.any(axis=0)
+                if err_sums is not None:
+                    keep = np.ones(values.shape, bool)
+                    keep[:, cols] = fin
+            any_finite |= ~bad
+            any_valid[:] = any_finite
+            sums += partial
         if err_sums is not None:
             if has_variance:
                 var = _read(cube, c0, c1, variance=True).reshape(n, -1)
             else:
                 var = np.broadcast_to(sigma2.astype(values.dtype), values.shape)
-            var = np.where(keep, var, 0)
+            if keep is not None:
+                var = np.where(keep, var, 0)
             dv2 = dv ** 2
             err_weights = np.stack([dv2 * u_kms ** k for k in range(5)])
             err_sums += err_weights.astype(var.dtype) @ var
@@ -496,8 +612,9 @@ def _signal_mask(block: np.ndarray, smoother: _Smoother,
     if settings.dilation_channels:
         above = _grow(above, settings.dilation_channels, (0,))
     if settings.dilation_pixels:
-        above = _grow(above, settings.dilation_pixels, (1, 2))
-    return above
+        reach = -(-settings.dilation_pixels // smoother.bin)
+        above = _grow(above, reach, (1, 2))
+    return smoother.upsample(above, block.shape)
 
 
 def _assemble(cube: Cube, settings: MomentSettings, sums: np.ndarray,

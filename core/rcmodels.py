@@ -80,9 +80,19 @@ def _central_difference(func: Callable, r) -> np.ndarray:
 
     Step ``h = 1e-5 R`` (relative truncation error ~1e-10 for these forms).
     """
+    return _value_and_slope(func, r)[1]
+
+
+def _value_and_slope(func: Callable, r) -> tuple[np.ndarray, np.ndarray]:
+    """``func(r)`` and its central-difference derivative in one call."""
     r = np.asarray(r, dtype=float)
     h = 1e-5 * np.maximum(np.abs(r), 1e-8)
-    return (func(r + h) - func(r - h)) / (2.0 * h)
+    vals = func(np.concatenate([np.ravel(r), np.ravel(r + h),
+                                np.ravel(r - h)]))
+    n = r.size
+    v, up, down = vals[:n], vals[n:2 * n], vals[2 * n:]
+    return (v.reshape(r.shape),
+            ((up - down) / (2.0 * np.ravel(h))).reshape(r.shape))
 
 
 @dataclass(frozen=True, eq=False)
@@ -114,6 +124,12 @@ class FunctionCurve:
             return np.asarray(self.dvdr_func(np.asarray(r_arcsec, float)),
                               dtype=float)
         return _central_difference(self.v, r_arcsec)
+
+    def v_dvdr(self, r_arcsec):
+        """``(v, dv/dr)`` together (one model evaluation)."""
+        if self.dvdr_func is not None:
+            return self.v(r_arcsec), self.dvdr(r_arcsec)
+        return _value_and_slope(self.v, r_arcsec)
 
 
 # --------------------------------------------------------------------------
@@ -232,6 +248,9 @@ class _ParamCurve:
     def dvdr(self, r_arcsec):
         return _central_difference(self.v, r_arcsec)
 
+    def v_dvdr(self, r_arcsec):
+        return _value_and_slope(self.v, r_arcsec)
+
 
 @dataclass(frozen=True, eq=False)
 class _SplineCurve:
@@ -242,7 +261,10 @@ class _SplineCurve:
         return self.spline(np.asarray(r_arcsec, dtype=float))
 
     def dvdr(self, r_arcsec):
-        return self.spline.derivative()(np.asarray(r_arcsec, dtype=float))
+        return self.spline(np.asarray(r_arcsec, dtype=float), nu=1)
+
+    def v_dvdr(self, r_arcsec):
+        return self.v(r_arcsec), self.dvdr(r_arcsec)
 
 
 def _fit_spline(r, v, e):
@@ -320,6 +342,10 @@ class CurveFit:
         """Model ``dV/dR``, km/s/arcsec (analytic for the spline, central
         differences of the closed form otherwise)."""
         return self._curve.dvdr(r_arcsec)
+
+    def v_dvdr(self, r_arcsec):
+        """``(v, dv/dr)`` together (one model evaluation)."""
+        return self._curve.v_dvdr(r_arcsec)
 
     def draw(self, n: int, rng: np.random.Generator) -> list:
         """``n`` curves drawn from the fit's uncertainty.

@@ -20,7 +20,8 @@ from pathlib import Path
 import numpy as np
 
 from .errors import GyrometerError, RecipeError
-from .session import (SCHEMA, SESSION_SCHEMA, KeySpec, Session, _toml_value,
+from .session import (_TERM_FLAGS, SCHEMA, SESSION_SCHEMA, KeySpec, Session,
+                      _toml_value,
                       load_session, read_toml, session_from_dict)
 
 __all__ = ["load_recipe", "load_any", "check_recipe", "describe_session",
@@ -95,8 +96,9 @@ def describe_session(session: Session) -> list[str]:
                      + ("" if not r.spacing_arcsec else
                         f", spacing {r.spacing_arcsec:g} arcsec"))
     b = session.budget
-    lines.append(f"uncertainty: {b.draws} draws per source, seed {b.seed}, "
-                 f"sources: {', '.join(b.terms)}")
+    terms = [t for t, flag in _TERM_FLAGS.items() if getattr(b, flag)]
+    lines.append(f"uncertainty: {b.n_draws} draws per source, seed {b.seed}, "
+                 f"sources: {', '.join(terms) or 'none'}")
     rc = session.rotation
     lines.append("rotation curve: " + {"derived": "fitted to the velocity map",
                                        "file": f"from {rc.file}",
@@ -133,7 +135,12 @@ def _rel(path: Path, base: Path | None) -> str:
 
 
 def _estimates(data_path: Path) -> dict[str, dict[str, object]]:
-    """Cheap values from the data: route, name, tracer, centre, slits."""
+    """Cheap values from the data: route, name, tracer, centre, slits.
+
+    The centre is the flux-weighted centroid of the intensity map
+    (:func:`gyrometer.core.geometry_estimate.intensity_centroid`) or the
+    map centre for a cube.
+    """
     from .coords import pixel_scale_arcsec
     from .dataset import Cube
     from .fitsio import open_data
@@ -158,14 +165,20 @@ def _estimates(data_path: Path) -> dict[str, dict[str, object]]:
             est["geometry"]["vsys_kms"] = round(float(np.nanmedian(v)), 1)
     wcs = data.wcs
     ny, nx = shape
+    ra = dec = None
     if image is not None and np.isfinite(image).any():
-        smooth = np.where(np.isfinite(image), image, -np.inf)
-        py, px = np.unravel_index(int(np.argmax(smooth)), smooth.shape)
-    else:
-        px, py = (nx - 1) / 2.0, (ny - 1) / 2.0
-    world = wcs.celestial.pixel_to_world(px, py).icrs
-    est["geometry"]["ra_deg"] = round(float(world.ra.deg), 6)
-    est["geometry"]["dec_deg"] = round(float(world.dec.deg), 6)
+        from .geometry_estimate import intensity_centroid
+        try:
+            centre = intensity_centroid(data)
+            ra, dec = centre.ra_deg, centre.dec_deg
+        except GyrometerError:
+            pass
+    if ra is None:
+        world = wcs.celestial.pixel_to_world((nx - 1) / 2.0,
+                                             (ny - 1) / 2.0).icrs
+        ra, dec = float(world.ra.deg), float(world.dec.deg)
+    est["geometry"]["ra_deg"] = round(float(ra), 6)
+    est["geometry"]["dec_deg"] = round(float(dec), 6)
     scale = pixel_scale_arcsec(wcs)
     psf = data.psf_fwhm_arcsec or 2.0 * scale
     spacing = max(psf, 2.0 * scale)
@@ -182,7 +195,7 @@ def starter_recipe(data_path: str | os.PathLike, *,
     """Text of a recipe for ``data_path`` with every setting commented.
 
     Values that can be read or guessed cheaply from the data are filled in
-    (route, galaxy name, tracer, centre at the intensity peak, systemic
+    (route, galaxy name, tracer, centre at the intensity centroid, systemic
     velocity as the median velocity, slit spacing from the PSF); the
     geometry is set to ``mode = "estimate"``. Settings without a value
     (e.g. the distance) appear commented out.

@@ -162,8 +162,11 @@ def _grid(r_lo: float, r_hi: float, n: int) -> np.ndarray:
 def _point(curve, om_p: float, kinds, r_lo: float, r_hi: float,
            n_grid: int) -> list[ResonancePoint]:
     grid = _grid(r_lo, r_hi, n_grid)
-    v = np.asarray(curve.v(grid), dtype=float)
-    dv = np.asarray(curve.dvdr(grid), dtype=float)
+    both = getattr(curve, "v_dvdr", None)
+    if both is None:
+        def both(r):
+            return curve.v(r), curve.dvdr(r)
+    v, dv = (np.asarray(a, dtype=float) for a in both(grid))
     om = omega(v, grid)
     ka = kappa(v, dv, grid)
     scale = max(abs(om_p), float(np.nanmax(np.abs(om))), 1e-30)
@@ -171,12 +174,12 @@ def _point(curve, om_p: float, kinds, r_lo: float, r_hi: float,
     for kind in kinds:
         def f_scalar(r, kind=kind):
             rr = np.array([r])
-            vv = float(curve.v(rr)[0])
-            base = vv / r
             if kind.sign:
-                k2 = 2.0 * vv / r**2 * (vv + r * float(curve.dvdr(rr)[0]))
-                base += kind.sign * math.sqrt(max(k2, 0.0)) / kind.m
-            return base - om_p
+                vv, dd = (float(a[0]) for a in both(rr))
+                k2 = 2.0 * vv / r**2 * (vv + r * dd)
+                return (vv / r + kind.sign * math.sqrt(max(k2, 0.0)) / kind.m
+                        - om_p)
+            return float(curve.v(rr)[0]) / r - om_p
 
         f = om - om_p if kind.sign == 0 else om + kind.sign * ka / kind.m - om_p
         finite = np.isfinite(f)

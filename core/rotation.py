@@ -24,8 +24,8 @@ Limitations stated here once:
 * Inside a bar, gas and stars stream along the bar and ``V_rot`` is not the
   circular velocity (Spekkens & Sellwood 2007 model this with bisymmetric
   flows); flag the bar region before using the curve for resonances.
-* Per-pixel errors are inflated by ``sqrt(beam area / pixel area)`` because
-  pixels within one PSF are not independent (common practice).
+* For interferometric data (noise correlated over the beam) errors are
+  inflated by ``sqrt(beam area / pixel area)`` (common practice).
 """
 
 from __future__ import annotations
@@ -461,6 +461,8 @@ def asymmetric_drift_vc(r_arcsec, v_phi_kms, v_phi_err_kms, sigma_r_kms,
 # --------------------------------------------------------------------------
 
 _GEOMETRY_FREE = ("vsys", "pa", "inc")
+#: Tracers usually observed with interferometers (noise correlated over the beam).
+_RADIO_TRACERS = ("HI", "CO", "molecular gas")
 #: Gaussian beam area in units of FWHM^2: pi / (4 ln 2).
 _BEAM_AREA_PER_FWHM2 = math.pi / (4.0 * math.log(2.0))
 
@@ -568,6 +570,7 @@ def tilted_rings(maps, geometry: DiskGeometry, *,
                  min_pixels: int = 8,
                  min_coverage: float = 0.5,
                  asymmetric_drift: AsymmetricDrift | None = None,
+                 pixels_correlated: bool | None = None,
                  progress: ProgressCallback | None = None,
                  cancel: CancelFlag | None = None) -> TiltedRingResult:
     """Fit a thin rotating disk ring by ring to a velocity map.
@@ -585,8 +588,7 @@ def tilted_rings(maps, geometry: DiskGeometry, *,
 
     Errors: the least-squares covariance scaled by the reduced chi^2 (always
     when the map has no velocity errors, otherwise only when chi^2_red > 1),
-    then by ``sqrt(N_pix per beam)`` because pixels within one PSF are
-    correlated.
+    then, when the pixels' noise is correlated, by ``sqrt(N_pix per beam)``.
 
     Parameters
     ----------
@@ -613,6 +615,12 @@ def tilted_rings(maps, geometry: DiskGeometry, *,
         ring's area on the sky (field edges, masks) are skipped.
     asymmetric_drift : AsymmetricDrift, optional
         Correct the rotation of a stellar tracer to circular velocity.
+    pixels_correlated : bool, optional
+        Whether the noise of neighbouring pixels is correlated over the PSF
+        (interferometric images, resampled cubes): errors are then inflated
+        by ``sqrt(N_pix per beam)``. Default: True for radio tracers (HI,
+        CO, molecular gas), False otherwise (IFU spaxels with independent
+        noise).
 
     Raises
     ------
@@ -663,8 +671,10 @@ def tilted_rings(maps, geometry: DiskGeometry, *,
     if edges.size < 2:
         raise FitError("the ring width exceeds the data radius",
                        keyword="ring_width_arcsec", value=width)
+    if pixels_correlated is None:
+        pixels_correlated = maps.tracer in _RADIO_TRACERS
     beam_factor = 1.0
-    if psf:
+    if psf and pixels_correlated:
         beam_factor = math.sqrt(max(1.0, _BEAM_AREA_PER_FWHM2 * psf**2
                                     / pix**2))
     cos_lim = math.sin(math.radians(exclude_minor_axis_deg))

@@ -17,10 +17,11 @@ pattern speeds are known exactly and written next to them as JSON:
   Gaussian scatter.
 
 Everything is seeded and written without dates, so the files are
-byte-for-byte reproducible. Data values are rounded to 1/1000 of their
-noise level before they are written (harmless, as the noise is 1000 times
-larger) so that last-bit differences between platforms' math libraries do not
-change the bytes. Regenerate with::
+byte-for-byte reproducible. Data values are rounded to about 1/1000 of
+their noise level (a power of ten) and JSON numbers to 10 significant digits
+before they are written (harmless, as the noise is 1000 times larger) so
+that last-bit differences between platforms' math libraries do not change
+the bytes. Regenerate with::
 
     python -m gyrometer.core.samples sample_cubes --force
 """
@@ -100,16 +101,48 @@ def sample_models() -> dict[str, GalaxyModel]:
     return {m.name: m for m in (lbdp011, lbdp023, lbdp037)}
 
 
+def _power_of_ten_below(value: float) -> float:
+    """The largest power of ten <= ``value`` (a platform-stable step)."""
+    return 10.0 ** math.floor(math.log10(value))
+
+
 def _quantise(values: np.ndarray, step: float) -> np.ndarray:
-    """Round to multiples of ``step`` (platform-independent bytes)."""
+    """Round to multiples of ``step``.
+
+    Last-bit differences between platforms' vectorised math then almost
+    never reach the written bytes (a value must lie within one ulp of a
+    rounding boundary to change).
+    """
     return np.round(np.asarray(values, dtype=float) / step) * step
+
+
+def _round_floats(value, digits: int = 10):
+    """Round every float of a JSON-ready structure to ``digits`` significant
+    digits (same reason as :func:`_quantise`)."""
+    if isinstance(value, float):
+        return float(f"{value:.{digits}g}")
+    if isinstance(value, dict):
+        return {k: _round_floats(v, digits) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_round_floats(v, digits) for v in value]
+    return value
 
 
 def _truth_json(truth: Truth, files: list[str], extra: dict) -> str:
     record = {"programme": _PROGRAMME, "synthetic": True, "files": files}
     record.update(extra)
-    record["truth"] = truth.to_dict()
+    record["truth"] = _round_floats(truth.to_dict())
     return json.dumps(record, indent=2) + "\n"
+
+
+def _quantised_cube(cube, keep_variance: bool):
+    """Cube rounded to 1/1000 of its noise (a power of ten) for stable bytes."""
+    variance = _quantise(cube.variance, _power_of_ten_below(
+        float(cube.variance.flat[0])) * 1e-6)
+    step = _power_of_ten_below(math.sqrt(float(variance.flat[0])) / 1000.0)
+    return replace(cube, data=_quantise(cube.data, step).astype(np.float32),
+                   variance=(variance.astype(np.float32) if keep_variance
+                             else None))
 
 
 def _rotation_curve_table(model: GalaxyModel, rng: np.random.Generator
@@ -176,10 +209,7 @@ def write_samples(folder: str | os.PathLike, overwrite: bool = False,
     m = models["LBDP-011"]
     cube, truth = make_cube(m, spectral="halpha-air", n_channels=40,
                             channel_width=0.45)
-    sigma = math.sqrt(float(cube.variance.flat[0]))
-    cube = replace(cube, data=_quantise(cube.data, sigma / 1000).astype(
-        np.float32), variance=_quantise(cube.variance, sigma ** 2 / 1000
-                                        ).astype(np.float32))
+    cube = _quantised_cube(cube, keep_variance=True)
     path = write_cube(folder / SAMPLE_FILES[0], cube, overwrite=overwrite)
     done(path)
     path = write_text_atomic(folder / SAMPLE_FILES[1], _truth_json(
@@ -201,15 +231,14 @@ def write_samples(folder: str | os.PathLike, overwrite: bool = False,
     cube, truth = make_cube(m, spectral="hi-freq", n_channels=48,
                             channel_width=-40.0e3)
     sigma = math.sqrt(float(cube.variance.flat[0]))
-    cube = replace(cube, data=_quantise(cube.data, sigma / 1000).astype(
-        np.float32), variance=None)
+    cube = _quantised_cube(cube, keep_variance=False)
     path = write_cube(folder / SAMPLE_FILES[3], cube, overwrite=overwrite)
     done(path)
     path = write_text_atomic(folder / SAMPLE_FILES[4], _truth_json(
         truth, [SAMPLE_FILES[3]],
         {"data": f"radio HI cube, FREQ axis, 40 kHz channels, beam "
                  f"{m.psf_fwhm_arcsec} arcsec FWHM, noise "
-                 f"{sigma:.6g} Jy/beam per channel",
+                 f"{sigma:.3g} Jy/beam per channel",
          "velocity_note": "velocities are V_sys + v_los in the radio "
                           "convention (rest 1420405751.768 Hz)"}),
         overwrite=overwrite)
@@ -218,11 +247,11 @@ def write_samples(folder: str | os.PathLike, overwrite: bool = False,
     # LBDP-037: stellar map set on a rotated WCS
     m = models["LBDP-037"]
     maps, truth = make_maps(m, intensity_unit="1e-20 erg / (s cm2 Angstrom)")
-    i_step = float(maps.intensity_err.min()) / 1000
+    i_step = _power_of_ten_below(float(maps.intensity_err.min()) / 1000.0)
     maps = replace(
         maps,
         intensity=_quantise(maps.intensity, i_step),
-        intensity_err=_quantise(maps.intensity_err, i_step),
+        intensity_err=_quantise(maps.intensity_err, i_step * 1e-3),
         velocity_kms=_quantise(maps.velocity_kms, 1e-3),
         velocity_err_kms=_quantise(maps.velocity_err_kms, 1e-3),
         dispersion_kms=_quantise(maps.dispersion_kms, 1e-3),

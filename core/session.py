@@ -349,6 +349,8 @@ _GEOMETRY_KEYS = (
     KeySpec("inc_err_deg", "float", 0.0, "1-sigma error of the inclination (deg)"),
     KeySpec("vsys_err_kms", "float", 0.0, "1-sigma error of the systemic velocity (km/s)"),
     KeySpec("distance_err_mpc", "float", 0.0, "1-sigma error of the distance (Mpc)"),
+    KeySpec("source", "str", "recipe", "where the values come from (free "
+            "text, kept in the results metadata)"),
 )
 
 #: Every section and key of a recipe / session file, in file order.
@@ -647,9 +649,9 @@ def _explicit_slits(doc: dict, source: str, symmetric: bool, error
 def _check_files(spec: InputSpec, rotation: RotationSettings, source: str,
                  error) -> None:
     roles = spec.files()
-    if spec.kind == "maps" and "maps" not in roles:
+    if spec.kind == "maps":
         for needed in ("intensity", "velocity"):
-            if needed not in roles:
+            if needed not in roles and "maps" not in roles:
                 raise error("the maps route needs this file (or input.maps)",
                             path=source, keyword=f"input.{needed}",
                             hint="or set input.kind = 'cube' and input.cube")
@@ -704,6 +706,7 @@ def session_from_dict(doc: dict, *, base_dir: str | os.PathLike = ".",
     inp = InputSpec(**v["input"], sha256=tuple(sorted(sha.items())))
     geo = v["geometry"]
     mode = geo.pop("mode")
+    geo_source = geo.pop("source")
     geometry = None
     guess: tuple[tuple[str, float], ...] = ()
     if mode == "estimate":
@@ -718,7 +721,7 @@ def session_from_dict(doc: dict, *, base_dir: str | os.PathLike = ".",
         if geo["vsys_kms"] is None:
             geo["vsys_kms"] = 0.0
         try:
-            geometry = DiskGeometry(**geo, source="recipe")
+            geometry = DiskGeometry(**geo, source=geo_source)
         except GyrometerError as exc:
             raise error(exc.message, path=source,
                         keyword=f"geometry.{exc.keyword}", value=exc.value,

@@ -437,11 +437,13 @@ def slit_spectra(cube: Cube, weights: Sequence[SlitWeights], *,
         report(progress, stop, n_chan, "summing slit spectra")
     # rows, masking and <X> exactly as the other routes
     valid = inside & ~bad_pix[col_entry]
-    bad = _tw._row_bad(layout, valid)
+    masked_rows = np.bincount(layout.row, weights=layout.weight * (inside & ~valid),
+                              minlength=n_rows) > 0
     if not symmetric:
-        # a row keeps a NaN pixel's partial sums, so drop the whole row
-        valid &= ~bad[layout.row]
-        bad = _tw._row_bad(layout, valid) | bad
+        # a row's spectrum keeps a NaN pixel's other channels, so the whole
+        # row goes (pixels beyond the map edge only shorten it)
+        valid &= ~masked_rows[layout.row]
+    bad = _tw._row_bad(layout, valid)
     zeros = np.zeros(layout.flat.size)
     s = np.where(valid, cont[col_entry], 0.0)
     var_s = np.where(valid, cont_var[col_entry], 0.0) if has_var else np.full(s.shape, np.nan)
@@ -454,7 +456,7 @@ def slit_spectra(cube: Cube, weights: Sequence[SlitWeights], *,
                             np.asarray(halves, float))
     use = _tw._used_rows(layout, bad, symmetric)
     if not symmetric:
-        use &= ~bad
+        use &= ~masked_rows
     flux = np.add.reduceat(row_flux * use[:, None], layout.row_start, axis=0)
     var = (np.add.reduceat(row_var * use[:, None], layout.row_start, axis=0)
            if has_var else None)

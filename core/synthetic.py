@@ -54,6 +54,16 @@ Sky frame: :mod:`gyrometer.core.coords` (PA north through east to the
 receding line of nodes, ``X`` along it, ``y = Y / cos i``). Pixel offsets
 come from the WCS through :func:`~gyrometer.core.coords.pixel_to_offsets`,
 so rotated and flipped WCS are exact.
+
+Examples
+--------
+>>> from gyrometer.core.synthetic import barred_model, make_maps, make_cube
+>>> model = barred_model(omega_p_kms_kpc=40.0, psf_fwhm_arcsec=1.5)
+>>> maps, truth = make_maps(model, noise=False)
+>>> round(truth.tw_slope_kms_arcsec[0], 4)     # Omega_p sin i, km/s/arcsec
+2.9711
+>>> cube, _ = make_cube(model.with_(shape=(48, 48)), spectral="hi-freq",
+...                     n_channels=48)
 """
 
 from __future__ import annotations
@@ -612,8 +622,9 @@ def model_wcs(model: GalaxyModel) -> WCS:
     w.wcs.cdelt = [cdelt1, scale]
     rho = math.radians(model.wcs_rotation_deg)
     ratio = scale / cdelt1
-    w.wcs.pc = [[math.cos(rho), -math.sin(rho) * ratio],
-                [math.sin(rho) / ratio, math.cos(rho)]]
+    # rounded to 1e-12 so headers do not depend on the libm's last bit
+    cos_r, sin_r = round(math.cos(rho), 12), round(math.sin(rho), 12)
+    w.wcs.pc = [[cos_r, -sin_r * ratio], [sin_r / ratio, cos_r]]
     w.wcs.radesys = "ICRS"
     w.wcs.equinox = 2000.0
     w.wcs.set()
@@ -687,7 +698,8 @@ def _truth(model: GalaxyModel, velocity_convention: str, seed: int | None,
     omegas = tuple(float(p.omega_p_kms_kpc) for p in model.patterns)
     ny, nx = model.shape
     r_field_kpc = 0.5 * math.hypot(nx, ny) * model.pixel_scale_arcsec * kpa
-    r_samples = np.linspace(0.0, r_field_kpc / g.cos_i, 201)
+    r_max = r_field_kpc / g.cos_i
+    r_samples = np.linspace(r_max / 200.0, r_max, 200)   # R > 0: Omega = V/R
     vc = rotation_velocity_kms(model, r_samples)
     cor = tuple(_corotation_kpc(model, o) for o in omegas)
     bars = [p for p in model.patterns if p.kind == "bar"]

@@ -212,7 +212,8 @@ class AbsorptionScene:
 
 def absorption_scene(model: GalaxyModel, *, band: str = "cat",
                      step_kms: float | None = 40.0, step_A: float | None = None,
-                     continuum_slope: float = 0.1, snr: float | None = None) -> AbsorptionScene:
+                     continuum_slope: float = 0.1, snr: float | None = None,
+                     wave_A=None) -> AbsorptionScene:
     """Fields and spectral grid of an absorption-line cube of ``model``.
 
     Parameters
@@ -231,12 +232,20 @@ def absorption_scene(model: GalaxyModel, *, band: str = "cat",
     snr : float or None
         Signal-to-noise per channel of the brightest spaxel's continuum;
         default ``1 / model.noise_frac``.
+    wave_A : array_like, optional
+        Explicit increasing channel centres (observed, air, Angstrom), e.g. a
+        whole IFU axis; overrides ``step_kms`` and ``step_A``. Outside the
+        band the spectrum is a featureless continuum.
     """
     lines = band_lines(band)
     maps, truth = make_maps(model, noise=False)
     z1 = 1.0 + model.geometry.vsys_kms / C_KMS
     lo, hi = (x * z1 for x in BANDS[band]["range_A"])
-    if step_A is not None:
+    if wave_A is not None:
+        from .losvd import pixel_edges
+        wave = np.asarray(wave_A, float)
+        edges = pixel_edges(wave)
+    elif step_A is not None:
         n = int(math.floor((hi - lo) / step_A)) + 1
         wave = lo + step_A * np.arange(n)
         edges = lo + step_A * (np.arange(n + 1) - 0.5)

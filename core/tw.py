@@ -260,10 +260,11 @@ def slit_integrals_maps(maps: MapSet, geometry: DiskGeometry,
                    np.asarray(halves, float))
 
 
-def _channel_velocities(cube: Cube) -> np.ndarray:
-    """Channel-centre velocities (km/s) in the cube's convention."""
-    from . import spectral  # written alongside; imported lazily
-    return np.asarray(spectral.channel_velocities(cube.spectral), dtype=float)
+def _channel_velocities(cube: Cube):
+    """Channel-centre velocities and widths (km/s) in the cube's convention."""
+    from .spectral import channel_velocities
+    v_kms, dv_kms = channel_velocities(cube.spectral)
+    return np.asarray(v_kms, dtype=float), np.asarray(dv_kms, dtype=float)
 
 
 def slit_integrals_cube(cube: Cube, geometry: DiskGeometry,
@@ -299,7 +300,9 @@ def slit_integrals_cube(cube: Cube, geometry: DiskGeometry,
         Use a generous window: clipping the line biases ``<V>``.
     velocities_kms : array_like, optional
         Channel velocities (km/s), overriding the cube's spectral axis
-        (which is converted by :func:`gyrometer.core.spectral.channel_velocities`).
+        (which is converted by :func:`gyrometer.core.spectral.channel_velocities`
+        in the axis' own convention and rest value; channel widths from the
+        channel edges, so axes linear in frequency or wavelength are exact).
     chunk_channels : int
         Channels read at a time.
     progress, cancel
@@ -313,13 +316,15 @@ def slit_integrals_cube(cube: Cube, geometry: DiskGeometry,
     """
     weights = _check_weights(weights, cube.spatial_shape)
     layout = _layout(weights)
-    v_kms = (_channel_velocities(cube) if velocities_kms is None
-             else np.asarray(velocities_kms, dtype=float))
+    if velocities_kms is None:
+        v_kms, dv = _channel_velocities(cube)
+    else:
+        v_kms = np.asarray(velocities_kms, dtype=float)
+        dv = np.abs(np.gradient(v_kms)) if v_kms.size > 1 else np.ones(1)
     if v_kms.size != cube.shape[0]:
         raise DataContentError("channel velocities do not match the cube",
                                value=(v_kms.size, cube.shape[0]))
     v_rel = v_kms - geometry.vsys_kms
-    dv = np.abs(np.gradient(v_kms)) if v_kms.size > 1 else np.ones(1)
     chans = np.arange(v_kms.size)
     if window_kms is not None:
         lo, hi = sorted(window_kms)

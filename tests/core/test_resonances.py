@@ -253,3 +253,47 @@ def test_pattern_speed_without_unit_or_distance_is_refused():
     curve = FunctionCurve(lambda r: np.full_like(r, 200.0), (1.0, 60.0))
     with pytest.raises(RotationCurveError):
         find_resonances(curve, 4.0 * KMS_ARCSEC, ms=(0,))
+
+
+def test_any_multiplicity_the_user_asks_for():
+    # m = 3 on a flat curve: R/R_CR = 1 -+ sqrt(2)/3 (DOMAIN.md §4 power-law
+    # formula with beta = 0, derived)
+    res = _by_name(find_resonances(_power_law(0.0), 8.0 * KMS_ARCSEC, ms=(3,)))
+    cr = res["CR"].radius_arcsec
+    assert res["inner 3:1"].radius_arcsec / cr == pytest.approx(1 - math.sqrt(2) / 3, rel=1e-7)
+    assert res["outer 3:1"].radius_arcsec / cr == pytest.approx(1 + math.sqrt(2) / 3, rel=1e-7)
+    assert "ILR (outer)" not in res
+
+
+def test_corotation_of_the_synthetic_barred_galaxy_from_its_velocity_field():
+    # whole chain on the generator of core/synthetic.py: tilted rings ->
+    # bar zone flagged -> smooth model chosen by BIC -> Monte Carlo; the
+    # true corotation radius (Truth.corotation_arcsec) must be recovered
+    from gyrometer.core.geometry import DiskGeometry
+    from gyrometer.core.rcmodels import choose_model
+    from gyrometer.core.rotation import tilted_rings
+    from gyrometer.core.synthetic import GalaxyModel, PatternSpec, make_maps
+
+    geom = DiskGeometry(ra_deg=150.0, dec_deg=2.0, pa_deg=250.0, inc_deg=55.0,
+                        vsys_kms=3000.0, distance_mpc=20.0)
+    bar = PatternSpec("bar", 60.0, 0.5, 0.0, 2.0, angle_deg=60.0)
+    model = GalaxyModel("LBDP-011", geom, disk_scale_kpc=1.5, r_turn_kpc=0.5,
+                        shape=(96, 96), pixel_scale_arcsec=1.0,
+                        wcs_rotation_deg=30.0, center_offset_pix=(2.3, -1.7),
+                        psf_fwhm_arcsec=1.5, subsample=2, patterns=(bar,))
+    maps, truth = make_maps(model, rng=np.random.default_rng(0))
+    curve = tilted_rings(maps, geom, ring_width_arcsec=2.0).curve
+    curve = curve.with_flags(curve.flagged
+                             | (curve.r_arcsec < truth.zones_arcsec[0][1]),
+                             "bar zone")
+    fit = choose_model(fit_curve_models(curve), "bic")
+    assert 0.5 < fit.reduced_chi2 < 2.0
+    table = resonance_budget(fit, 60.0 * KMS_KPC, omega_p_p16=57.0 * KMS_KPC,
+                             omega_p_p84=63.0 * KMS_KPC,
+                             rng=np.random.default_rng(1), n_draws=200,
+                             n_grid=300)
+    cr = table.row("CR")
+    true_cr = truth.corotation_arcsec[0]
+    assert cr.status == STATUS_FOUND
+    assert cr.radius_arcsec == pytest.approx(true_cr, rel=0.03)
+    assert cr.p16_arcsec < true_cr < cr.p84_arcsec

