@@ -15,11 +15,9 @@ All science is done by :mod:`gyrometer.core`. Long work runs in a
 
 from __future__ import annotations
 
-import math
 import time
 from dataclasses import replace
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 from PySide6.QtCore import QObject, QTimer, Signal
@@ -154,6 +152,11 @@ class Controller(QObject):
         (``cube_opened``). Returns False if other work is still running.
         """
         path = Path(path)
+        if path.is_dir():  # a folder: its session file, else its map set or cube
+            found = (sorted(path.glob("*.toml")) + sorted(path.glob("*maps*.fits"))
+                     + sorted(path.glob("*.fits")))
+            if found:
+                path = found[0]
         if path.suffix.lower() in {".toml"}:
             return self.open_session(path)
         from gyrometer.core import fitsio

@@ -10,8 +10,9 @@ from __future__ import annotations
 from pathlib import Path
 
 from PySide6.QtCore import QSize, Qt
-from PySide6.QtGui import QAction, QIcon, QKeySequence
+from PySide6.QtGui import QAction, QKeySequence
 from PySide6.QtWidgets import (QDockWidget, QFileDialog, QLabel, QMainWindow,
+                               QMessageBox,
                                QProgressBar, QPushButton, QScrollArea,
                                QSplitter, QTabWidget, QToolBar, QVBoxLayout,
                                QWidget)
@@ -237,6 +238,8 @@ class MainWindow(QMainWindow):
         c.recent_changed.connect(self._fill_recent)
         c.data_changed.connect(self._update_enabled)
         c.selection_changed.connect(self._update_enabled)
+        c.undo_stack.cleanChanged.connect(self._update_title)
+        c.session_changed.connect(self._session_changed)
         c.tasks.started.connect(self._task_started)
         c.tasks.progressed.connect(self._task_progress)
         c.tasks.idle.connect(self._task_idle)
@@ -245,6 +248,17 @@ class MainWindow(QMainWindow):
             self.estimate_menu.addAction(act)
             self.geometry_panel.add_estimator(key, text, tip,
                                               lambda _=False, k=key: c.estimate(k))
+
+    def _session_changed(self, session) -> None:
+        path = self.controller.source_path or ""
+        self._session_path = path if path.lower().endswith(".toml") else None
+        self._update_title()
+
+    def _update_title(self, *_args) -> None:
+        name = self.controller.galaxy_name()
+        title = f"Gyrometer \u2013 {name}[*]" if name else "Gyrometer[*]"
+        self.setWindowTitle(title)
+        self.setWindowModified(not self.controller.undo_stack.isClean())
 
     def _status(self, text: str) -> None:
         self.statusBar().showMessage(text, 8000)
@@ -316,12 +330,25 @@ class MainWindow(QMainWindow):
                 return
         if self.controller.save_session(path, overwrite=True):
             self._session_path = path
+            self.controller.undo_stack.setClean()
 
     def export_dialog(self) -> None:
         folder = QFileDialog.getExistingDirectory(
             self, "Export results to folder", self.controller.settings.last_folder())
-        if folder:
-            self.controller.export_results(folder)
+        if not folder:
+            return
+        overwrite = False
+        if any(Path(folder).iterdir()):
+            answer = QMessageBox.question(
+                self, "Export results",
+                f"{folder} is not empty. Replace files of the same name?\n"
+                "(No: stop if a file would be replaced; nothing is written then.)",
+                QMessageBox.StandardButton.Yes | QMessageBox.StandardButton.No
+                | QMessageBox.StandardButton.Cancel, QMessageBox.StandardButton.No)
+            if answer == QMessageBox.StandardButton.Cancel:
+                return
+            overwrite = answer == QMessageBox.StandardButton.Yes
+        self.controller.export_results(folder, overwrite=overwrite)
 
     # -- view actions -----------------------------------------------------
     def reset_zoom(self) -> None:

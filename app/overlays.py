@@ -13,7 +13,7 @@ from typing import Callable
 import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import QPointF, QRectF, Qt, Signal
-from PySide6.QtGui import QColor, QPainterPath, QPainterPathStroker, QPen
+from PySide6.QtGui import QColor, QPainterPath, QPen
 
 from .skyframe import SkyFrame
 

@@ -103,7 +103,13 @@ class QtGeometryPanel(QGroupBox):
         self.source.setWordWrap(True)
         self.source.setToolTip("Where the current values came from")
         grid.addWidget(self.source, len(_GEOMETRY_FIELDS), 0, 1, 4)
+        self.estimate_text = QLabel("")
+        self.estimate_text.setWordWrap(True)
+        self.estimate_text.setToolTip("Values and 1-sigma errors returned by the "
+                                      "last estimator run")
+        grid.addWidget(self.estimate_text, len(_GEOMETRY_FIELDS) + 1, 0, 1, 4)
         controller.geometry_changed.connect(self.show_geometry)
+        controller.estimate_ready.connect(self.show_estimate)
         self.setEnabled(False)
 
     def add_estimator(self, key: str, text: str, tip: str, slot) -> QPushButton:
@@ -116,6 +122,10 @@ class QtGeometryPanel(QGroupBox):
         layout.addWidget(button, row, 0, 1, 4)
         self.estimate_buttons[key] = button
         return button
+
+    def show_estimate(self, key: str, estimate) -> None:
+        from .controller import describe_estimate
+        self.estimate_text.setText(f"<small>Last estimate: {describe_estimate(estimate)}</small>")
 
     def show_geometry(self, geometry) -> None:
         self.setEnabled(geometry is not None)
@@ -302,7 +312,10 @@ class QtSlitPanel(QGroupBox):
 
     def show_measurement(self, m) -> None:
         n = self.table.rowCount()
-        for i in range(n):
+        rows = range(n)
+        if self.controller.dragging and 0 <= self.controller.selected < n:
+            rows = (self.controller.selected,)   # the rest follow when the drag ends
+        for i in rows:
             if m is None or i >= m.integrals.n_slits:
                 for j in (3, 4, 5):
                     self._set(i, j, "\u2013")

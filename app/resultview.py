@@ -14,13 +14,13 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import Qt
 from PySide6.QtGui import QColor
-from PySide6.QtWidgets import (QHBoxLayout, QHeaderView, QLabel, QPushButton,
-                               QTableWidget, QTableWidgetItem, QVBoxLayout,
-                               QWidget)
+from PySide6.QtWidgets import (QGraphicsItem, QHBoxLayout, QHeaderView, QLabel, QPushButton,
+                               QSizePolicy, QTableWidget, QTableWidgetItem,
+                               QVBoxLayout, QWidget)
 
 from gyrometer.core.geometry import kpc_per_arcsec
 
-__all__ = ["QtResultView", "format_pattern_speed", "format_budget"]
+__all__ = ["QtResultView", "format_pattern_speed", "format_live", "format_budget"]
 
 _POINT = QColor(40, 110, 200)
 _SELECTED = QColor(230, 150, 0)
@@ -55,6 +55,17 @@ def format_pattern_speed(m) -> str:
              f"{m.integrals.n_slits} slits, i = {m.geometry.inc_deg:.1f}\u00b0</small>"
              "<br><small>fit-only error; run the uncertainty budget for the "
              "full interval</small>")
+    return text
+
+
+def format_live(m) -> str:
+    """Short rich text of Omega_p for the corner of the live plot."""
+    if m is None:
+        return ""
+    text = (f"\u03a9<sub>p</sub> = <b>{_fmt(m.omega_p_kms_arcsec, m.omega_p_err_kms_arcsec)}"
+            "</b> km/s/arcsec")
+    if m.omega_p_kms_kpc is not None:
+        text += f"<br>= <b>{_fmt(m.omega_p_kms_kpc, m.omega_p_err_kms_kpc)}</b> km/s/kpc"
     return text
 
 
@@ -94,23 +105,49 @@ class QtResultView(QWidget):
         item.setLabel("left", "\u27e8V\u27e9 \u2212 V<sub>sys</sub> (km/s)")
         item.setTitle("Slit integrals and straight-line fit")
         item.showGrid(x=True, y=True, alpha=0.25)
+        for name in ("left", "bottom"):
+            # the points' repaint regions touch the axes; a pixmap cache makes
+            # redrawing them a copy instead of re-rendering the tick text
+            item.getAxis(name).setCacheMode(QGraphicsItem.CacheMode.DeviceCoordinateCache)
+        # the pattern speed inside the plot: it follows every live update
+        # without re-laying-out the window (a QLabel would)
+        self.live_text = pg.TextItem(anchor=(0, 0), color=(20, 20, 20),
+                                     fill=pg.mkBrush(255, 255, 255, 215),
+                                     border=pg.mkPen(180, 180, 180))
+        self.live_text.setParentItem(item.getViewBox())
+        self.live_text.setPos(6, 6)
+        self.live_text.setZValue(50)
         self.errors = pg.ErrorBarItem(pen=pg.mkPen(_POINT, width=1))
-        self.points = pg.ScatterPlotItem(size=8, pen=pg.mkPen("k", width=0.5))
+        # one scatter per style: fixed brushes keep pyqtgraph's symbol cache warm
+        self.points = pg.ScatterPlotItem(size=8, pen=pg.mkPen("k", width=0.5),
+                                         brush=pg.mkBrush(_POINT))
+        self.unused_points = pg.ScatterPlotItem(size=8, pen=pg.mkPen("k", width=0.5),
+                                                brush=pg.mkBrush(_UNUSED))
+        self.selected_point = pg.ScatterPlotItem(size=11, pen=pg.mkPen("k", width=0.8),
+                                                 brush=pg.mkBrush(_SELECTED))
         # an infinite line keeps its repaint region inside the plot, so the
         # axes are not redrawn on every live update
         self.fit_line = pg.InfiniteLine(pos=(0, 0), angle=0, pen=pg.mkPen(_FIT, width=2))
         self.fit_line.setVisible(False)
-        for it in (self.errors, self.fit_line, self.points):
+        for it in (self.errors, self.fit_line, self.unused_points, self.points,
+                   self.selected_point):
             item.addItem(it)
+        self._follow = True
         self.omega = QLabel(format_pattern_speed(None))
         self.omega.setTextFormat(Qt.TextFormat.RichText)
         self.omega.setWordWrap(True)
         self.omega.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
         self.omega.setToolTip("Pattern speed from the slope of the fit divided "
                               "by sin i (Tremaine & Weinberg 1984)")
+        # a fixed height: new numbers while dragging must not re-lay-out (and
+        # so repaint) the whole window
+        self.omega.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
+        self.omega.setFixedHeight(int(self.omega.fontMetrics().lineSpacing() * 5.6))
+        self.omega.setAutoFillBackground(True)
         self.warnings = QLabel("")
         self.warnings.setWordWrap(True)
         self.warnings.setStyleSheet("color: #a0522d;")
+        self.warnings.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
 
         self.budget_button = QPushButton("Run uncertainty budget")
         self.budget_button.setToolTip(
@@ -143,18 +180,32 @@ class QtResultView(QWidget):
         layout.addWidget(self.budget_text)
         layout.addWidget(self.budget_table, 2)
 
+        self.route_note = QLabel("")
+        self.route_note.setWordWrap(True)
+        layout.insertWidget(2, self.route_note)
         self.budget_button.clicked.connect(controller.run_budget)
+        controller.session_changed.connect(self._session_changed)
         controller.measurement_changed.connect(self.show_measurement)
         controller.selection_changed.connect(self._selection_changed)
         controller.budget_changed.connect(self.show_budget)
+
+    def _session_changed(self, session) -> None:
+        cube = session is not None and session.input.kind == "cube"
+        self.route_note.setText(
+            "<small><i>Live values come from the moment maps; <b>Run full "
+            "measurement</b> integrates the cube directly, as the batch "
+            "command does.</i></small>" if cube else "")
 
     def _selection_changed(self, _index: int) -> None:
         self.show_measurement(self.controller.measurement)
 
     def show_measurement(self, m) -> None:
-        self.omega.setText(format_pattern_speed(m))
+        self.live_text.setHtml(format_live(m))
+        if not self.controller.dragging:   # the detailed text when the drag ends
+            self.omega.setText(format_pattern_speed(m))
         if m is None:
-            self.points.clear()
+            for item in (self.points, self.unused_points, self.selected_point):
+                item.clear()
             self.errors.setData(x=np.zeros(0), y=np.zeros(0), height=np.zeros(0),
                                 width=np.zeros(0))
             self.fit_line.setVisible(False)
@@ -163,24 +214,30 @@ class QtResultView(QWidget):
         it = m.integrals
         x, y = np.asarray(it.x_mean_arcsec), np.asarray(it.v_mean_kms)
         ok = np.isfinite(x) & np.isfinite(y)
-        selected = self.controller.selected
-        brushes = [pg.mkBrush(_SELECTED if i == selected else
-                              (_POINT if m.used[i] else _UNUSED)) for i in range(x.size)]
-        self.points.setData(x=x[ok], y=y[ok], brush=[b for b, k in zip(brushes, ok) if k],
-                            data=np.arange(x.size)[ok])
+        used = np.asarray(m.used, dtype=bool)
+        selected = np.zeros(x.size, dtype=bool)
+        if 0 <= self.controller.selected < x.size:
+            selected[self.controller.selected] = True
+        self.points.setData(x=x[ok & used], y=y[ok & used])
+        self.unused_points.setData(x=x[ok & ~used], y=y[ok & ~used])
+        self.selected_point.setData(x=x[ok & selected], y=y[ok & selected])
         self.errors.setData(x=x[ok], y=y[ok], height=2 * np.asarray(it.v_err_kms)[ok],
                             width=2 * np.asarray(it.x_err_arcsec)[ok])
         # keep the axes still while a slit is dragged (fewer repaints, and
         # the eye can follow the moving point); refit them when it ends
         vb = self.plot.getPlotItem().getViewBox()
-        vb.enableAutoRange(enable=not self.controller.dragging)
+        follow = not self.controller.dragging
+        if follow != self._follow:
+            self._follow = follow
+            vb.enableAutoRange(enable=follow)
         if ok.any() and np.isfinite(m.fit.slope):
             self.fit_line.setPos((0.0, m.fit.intercept))
             self.fit_line.setAngle(math.degrees(math.atan(m.fit.slope)))
             self.fit_line.setVisible(True)
         else:
             self.fit_line.setVisible(False)
-        self.warnings.setText("\n".join(f"\u26a0 {w}" for w in m.warnings))
+        if not self.controller.dragging:
+            self.warnings.setText("\n".join(f"\u26a0 {w}" for w in m.warnings))
 
     def show_budget(self, budget) -> None:
         self.budget_table.setRowCount(0)

@@ -38,7 +38,9 @@ def main() -> int:
     t0 = time.perf_counter()
     model = barred_model(shape=(500, 500), pixel_scale_arcsec=0.2, subsample=1)
     maps, truth = make_maps(model, rng=np.random.default_rng(5))
-    print(f"synthetic 500x500 maps made in {time.perf_counter() - t0:.1f} s")
+    print(f"synthetic 500x500 maps made in {time.perf_counter() - t0:.1f} s; "
+          f"load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores "
+          "(figures scale with contention)")
 
     with tempfile.TemporaryDirectory() as cfg:
         app, window = create_app([], AppSettings(cfg))
@@ -51,6 +53,17 @@ def main() -> int:
         for _ in range(5):
             app.processEvents()
         item = window.map_view.slit_layer.items[7]
+
+        # 0) the science alone: core's live re-measurement of one slit
+        from gyrometer.core.tw import LiveMeasurer
+        live = LiveMeasurer(maps, truth.geometry, slits)
+        core = []
+        for k in range(30):
+            t = time.perf_counter()
+            live.update_slit(7, slits.slits[7].with_(offset_arcsec=-5.0 + 0.05 * k))
+            core.append(time.perf_counter() - t)
+        print(f"core LiveMeasurer.update_slit (20 slits, 500x500): median "
+              f"{1e3 * statistics.median(core):.1f} ms")
 
         # 1) cost of one complete update
         costs = []

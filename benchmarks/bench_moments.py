@@ -9,7 +9,7 @@ channel block so it is never held in memory. Then times
 (a) one streamed read-and-sum pass over the file (numpy memory map, blocks
     of 64 channels summed in float64), cold-ish then warm page cache;
 (b) :func:`gyrometer.core.moments.compute_moments` on the memory-mapped
-    cube for three settings: the whole axis without a mask, a realistic
+    cube (first run and best of two) for three settings: the whole axis without a mask, a realistic
     +/-500 km/s window around H-alpha with the smooth mask, and the smooth
     mask over nearly the whole axis (the stress case);
 
@@ -172,12 +172,16 @@ def main() -> None:
     )
     for label, settings in cases:
         peak = _PeakAnon()
-        t0 = time.perf_counter()
-        maps = compute_moments(cube, settings, progress=peak)
-        elapsed = time.perf_counter() - t0
-        print(f"(b) {label}: {elapsed:.2f} s = {elapsed / t_read:.2f} x the "
-              f"warm streamed pass; peak anonymous RSS {peak.peak_kib / 1024:.0f}"
-              f" MiB; median mom1 {np.nanmedian(maps.velocity_kms):.1f} km/s")
+        times = []
+        for _ in range(2):  # the first run also maps the file's pages in
+            t0 = time.perf_counter()
+            maps = compute_moments(cube, settings, progress=peak)
+            times.append(time.perf_counter() - t0)
+        best = min(times)
+        print(f"(b) {label}: {times[0]:.2f} s first, {best:.2f} s best = "
+              f"{best / t_read:.2f} x the warm streamed pass; peak anonymous "
+              f"RSS {peak.peak_kib / 1024:.0f} MiB; median mom1 "
+              f"{np.nanmedian(maps.velocity_kms):.1f} km/s")
     hwm = _status_kib("VmHWM") / 1024
     print(f"peak RSS (VmHWM, includes mapped file pages) {hwm:.0f} MiB vs file "
           f"{size_mib:.0f} MiB: {hwm - size_mib:+.0f} MiB over the mapped size")

@@ -169,10 +169,12 @@ def fourier_profile(intensity, wcs, geometry: DiskGeometry, *,
         if not a0 > 0:
             continue
         a2_err = math.nan
-        if noise is not None:
-            if a0 / sel.sum() < min_snr * np.nanmedian(noise[sel]):
+        ring_noise = None if noise is None else noise[sel][np.isfinite(noise[sel])]
+        if ring_noise is not None and ring_noise.size:
+            if a0 / sel.sum() < min_snr * np.median(ring_noise):
                 continue
-            a2_err = math.sqrt(0.5 * np.nansum(noise[sel] ** 2)) / a0
+            a2_err = math.sqrt(0.5 * np.sum(ring_noise**2) * sel.sum()
+                               / ring_noise.size) / a0
         resid = ii - axisym[sel]
         amps = []
         for m in (2, 4, 6):
@@ -263,7 +265,7 @@ def estimate_bar_length(maps, geometry: DiskGeometry, *,
     a2 = prof.a2[use]
     ph = prof.phase2_deg[use]
     a2_err = (np.zeros_like(a2) if prof.a2_err is None
-              else prof.a2_err[use])
+              else np.nan_to_num(prof.a2_err[use], nan=0.0))
     # only m = 2 amplitudes well above their noise count as structure
     significant = a2 > np.maximum(0.05, 5.0 * a2_err)
     if not significant.any():
@@ -395,6 +397,9 @@ def rotation_rate(r_cr_draws_arcsec, bar_length_arcsec: float,
     if not (math.isfinite(bar_length_arcsec) and bar_length_arcsec > 0):
         raise GeometryError("the bar length must be positive",
                             keyword="bar_length", value=bar_length_arcsec)
+    if not (math.isfinite(bar_err_arcsec) and bar_err_arcsec >= 0):
+        raise GeometryError("the bar-length error must be >= 0",
+                            keyword="bar_length_err", value=bar_err_arcsec)
     found = r_cr[np.isfinite(r_cr)]
     if found.size == 0:
         raise FitError("corotation was not found in any draw, so R cannot "

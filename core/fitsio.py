@@ -36,7 +36,7 @@ import hashlib
 import os
 import warnings
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import astropy.units as u
 import numpy as np
@@ -44,7 +44,7 @@ from astropy.io import fits
 from astropy.wcs import WCS, FITSFixedWarning
 
 from .dataset import TRACERS, Cube, MapSet, Provenance, SpectralAxis
-from .errors import (DataContentError, DataQualityWarning, GyrometerError,
+from .errors import (DataContentError, DataQualityWarning,
                      HeaderError, InputFileError, MapMismatchError,
                      OutputError, SpectralAxisError, UnitError)
 from .progress import CancelFlag, ProgressCallback, check_cancel, report
@@ -155,8 +155,10 @@ def _open(path: Path) -> fits.HDUList:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
+            # raw integers stay raw: scaled data are converted in chunks
             hdul = fits.open(path, memmap=True, mode="readonly",
-                             lazy_load_hdus=False)
+                             lazy_load_hdus=False,
+                             do_not_scale_image_data=True)
     except Exception as exc:  # astropy raises OSError, ValueError, ...
         raise InputFileError(f"not a readable FITS file ({exc})",
                              path=str(path)) from exc
@@ -216,19 +218,15 @@ def _read_array(hdu: Any, path: Path, label: str,
         "BZERO" in header and float(header["BZERO"]) != 0.0)
     blank = header.get("BLANK") if int(header.get("BITPIX", -32)) > 0 else None
     try:
-        if not scaled and blank is None:
-            data = hdu.data
-            if data is None:
-                raise DataContentError("the HDU has no data", path=str(path),
-                                       hdu=label)
-            return data
-        hdu._do_not_scale_image_data = True  # read raw integers, scale here
-        raw = hdu.data
-    except GyrometerError:
-        raise
+        raw = hdu.data  # raw values: the file is opened without scaling
     except Exception as exc:
         raise InputFileError(f"cannot read the data ({exc})", path=str(path),
                              hdu=label) from exc
+    if raw is None:
+        raise DataContentError("the HDU has no data", path=str(path),
+                               hdu=label)
+    if not scaled and blank is None:
+        return raw
     bscale = float(header.get("BSCALE", 1.0))
     bzero = float(header.get("BZERO", 0.0))
     out = np.empty(raw.shape, dtype=np.float32)

@@ -637,8 +637,9 @@ class SpectrumFit:
     dispersion_kms : float
         Second-moment dispersion of the fitted LOSVD.
     mean_shift_err_kms : float
-        Formal 1-sigma error of the first moment (from the Jacobian, scaled
-        by the reduced chi-square when no variance was given).
+        Formal 1-sigma error of the Gauss-Hermite first moment (from the
+        Jacobian, scaled by the reduced chi-square when no variance was
+        given); for a binned LOSVD the same number, as an approximation.
     chi2 : float
     dof : int
     model : numpy.ndarray
@@ -908,7 +909,8 @@ def fit_spectrum(flux, variance, template: PreparedTemplate, *,
             resid = (model - flux)[use] * weight[use]
             chi2 = float(resid @ resid)
             dof = int(use.sum() - n_lin - nodes.size)
-            err = float("nan")
+            # err stays the Gauss-Hermite first moment's formal error (an
+            # approximation; use a noise Monte Carlo for the binned shape)
         else:
             raise FitError("the binned LOSVD fit found no positive solution")
     else:

@@ -14,9 +14,12 @@ Method
    a stray line). Continuum subtraction is on by default for wavelength
    axes (optical IFU lines sit on stellar continuum) and off for frequency
    and velocity axes (radio cubes are normally continuum-subtracted).
-4. Mask (``mask='smooth'``): the cube is smoothed spatially (Gaussian) and
-   spectrally (boxcar), voxels above ``snr_threshold`` times the noise of
-   the *smoothed* cube are kept, and the mask is dilated by
+4. Mask (``mask='smooth'``): the cube is smoothed spatially (to a FWHM of
+   ``smooth_fwhm_pix``, default the PSF: averaged over bins of half that
+   size, then a Gaussian on the binned grid) and spectrally (boxcar of
+   ``smooth_channels``); voxels above ``snr_threshold`` times the noise of
+   the *smoothed* cube (measured the same way in the sidebands, or
+   propagated from the variance) are kept, and the mask is dilated by
    ``dilation_channels`` channels and ``dilation_pixels`` pixels; the
    moments are then taken of the unsmoothed data inside the mask. This is
    the "smooth and mask" practice of Dame (2011, arXiv:1101.1499): it keeps
@@ -103,8 +106,8 @@ class MomentSettings:
     snr_threshold : float
         Clip level in units of the smoothed cube's noise.
     smooth_fwhm_pix : float or None
-        FWHM of the spatial Gaussian, pixels; default the PSF FWHM in pixels
-        (at least 1.5), or 2 pixels if the PSF is unknown.
+        FWHM of the mask's spatial smoothing, pixels; default the PSF FWHM
+        in pixels (at least 1.5), or 2 pixels if the PSF is unknown.
     smooth_channels : int
         Width of the spectral boxcar (odd; 1 = no spectral smoothing).
     dilation_channels, dilation_pixels : int

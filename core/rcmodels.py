@@ -52,6 +52,7 @@ __all__ = [
     "CurveFit",
     "fit_curve_models",
     "choose_model",
+    "fit_table",
     "arctan_curve",
     "polyex_curve",
     "freeman_disk_curve",
@@ -501,3 +502,24 @@ def choose_model(fits, criterion: str = "bic") -> CurveFit:
     raise RotationCurveError(
         f"no fitted model named '{criterion}'", keyword="criterion",
         hint=f"fitted: {', '.join(f.name for f in fits)}; or 'bic' / 'aic'")
+
+
+def fit_table(fits):
+    """Fit quality of several models as an :class:`astropy.table.Table`:
+    name, number of parameters, chi^2, reduced chi^2, AIC, BIC, delta BIC
+    from the best, citation (best BIC first)."""
+    from astropy.table import Table
+
+    fits = sorted(fits, key=lambda f: f.bic)
+    if not fits:
+        raise RotationCurveError("no fitted models to tabulate")
+    best = fits[0].bic
+    return Table({"model": [f.name for f in fits],
+                  "n_params": [f.n_params for f in fits],
+                  "n_points": [f.n_points for f in fits],
+                  "chi2": [f.chi2 for f in fits],
+                  "reduced_chi2": [f.reduced_chi2 for f in fits],
+                  "aic": [f.aic for f in fits],
+                  "bic": [f.bic for f in fits],
+                  "delta_bic": [f.bic - best for f in fits],
+                  "citation": [f.citation for f in fits]})

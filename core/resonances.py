@@ -169,7 +169,9 @@ def _point(curve, om_p: float, kinds, r_lo: float, r_hi: float,
     v, dv = (np.asarray(a, dtype=float) for a in both(grid))
     om = omega(v, grid)
     ka = kappa(v, dv, grid)
-    scale = max(abs(om_p), float(np.nanmax(np.abs(om))), 1e-30)
+    finite_om = np.abs(om[np.isfinite(om)])
+    scale = max(abs(om_p), float(finite_om.max()) if finite_om.size else 0.0,
+                1e-30)
     out = []
     for kind in kinds:
         def f_scalar(r, kind=kind):
@@ -336,6 +338,7 @@ class ResonanceTable:
         rotation-rate Monte Carlo.
     notes : tuple of str
     """
+    # (the ILR count is derived from ``rows`` and ``draws_arcsec``)
 
     rows: tuple[ResonanceRow, ...]
     omega_p_kms_arcsec: tuple[float, float, float]
@@ -352,6 +355,25 @@ class ResonanceTable:
             return None
         s = kpc_per_arcsec(self.distance_mpc)
         return tuple(x / s for x in self.omega_p_kms_arcsec)
+
+    @property
+    def ilr_count(self) -> int | None:
+        """Number of ILRs (0, 1 or 2) found at the central estimate; None
+        when the table has no m = 2 rows."""
+        names = ("ILR (inner)", "ILR (outer)")
+        rows = [r for r in self.rows if r.name in names]
+        if not rows:
+            return None
+        return sum(r.status == STATUS_FOUND for r in rows)
+
+    @property
+    def ilr_count_fractions(self) -> tuple[float, float, float] | None:
+        """Fractions of the draws with no, one and two ILRs inside the data."""
+        if "ILR (inner)" not in self.draws_arcsec:
+            return None
+        n = (np.isfinite(self.draws_arcsec["ILR (inner)"]).astype(int)
+             + np.isfinite(self.draws_arcsec["ILR (outer)"]).astype(int))
+        return tuple(float(np.mean(n == k)) for k in (0, 1, 2))
 
     def row(self, name: str) -> ResonanceRow:
         for row in self.rows:
@@ -448,6 +470,11 @@ def resonance_budget(fit, omega_p, *, rng: np.random.Generator,
     r_lo, r_hi = r_range_arcsec or fit.r_range_arcsec
     kinds = _kinds(ms)
     central = _point(fit, om_central, kinds, r_lo, r_hi, n_grid)
+    if vary_curve and not hasattr(fit, "draw"):
+        raise RotationCurveError(
+            "this curve carries no uncertainty model to draw from",
+            keyword="vary_curve",
+            hint="fit it with fit_curve_models, or pass vary_curve=False")
     curves = fit.draw(n_draws, rng) if vary_curve else [fit] * n_draws
     radii = np.full((len(kinds), n_draws), np.nan)
     outside = np.zeros((len(kinds), n_draws), dtype=bool)

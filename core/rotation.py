@@ -187,6 +187,27 @@ class RotationCurve:
     def v_err(self) -> u.Quantity:
         return self.v_err_kms * u.km / u.s
 
+    def to_table(self):
+        """The curve as an :class:`astropy.table.QTable` (ECSV-ready, units
+        kept; kpc column when the distance is known)."""
+        from astropy.table import QTable
+
+        kms = u.km / u.s
+        t = QTable()
+        t["r"] = self.r_arcsec * u.arcsec
+        if self.distance_mpc is not None:
+            t["r_kpc"] = self.r_kpc * u.kpc
+        t["v"] = self.v_kms * kms
+        t["e_v"] = self.v_err_kms * kms
+        if self.v_rad_kms is not None:
+            t["v_rad"] = self.v_rad_kms * kms
+            if self.v_rad_err_kms is not None:
+                t["e_v_rad"] = self.v_rad_err_kms * kms
+        t["flagged"] = self.flagged
+        t.meta.update(source=self.source, distance_mpc=self.distance_mpc,
+                      flag_reason=self.flag_reason)
+        return t
+
     def unflagged(self) -> "RotationCurve":
         """The curve without flagged points (needs >= 3 left)."""
         keep = ~self.flagged
@@ -283,7 +304,6 @@ def load_rotation_curve(path: str | os.PathLike, *,
         A column is missing, non-numeric, has the wrong unit, or the values
         are invalid (see :class:`RotationCurve`).
     """
-    from astropy.io import ascii as _ascii  # noqa: F401 (registers readers)
     from astropy.table import Table
 
     path = os.fspath(path)
@@ -792,6 +812,9 @@ def tilted_rings(maps, geometry: DiskGeometry, *,
             "asymmetric drift corrected (Binney & Tremaine 2008 §4.8.2; "
             f"h = {asymmetric_drift.scale_length_arcsec:g} arcsec, sigma_z/"
             f"sigma_R = {asymmetric_drift.sigma_z_over_sigma_r:g} assumed)")
+    notes.append("inside a bar the tracer streams along it and V_rot is not "
+                 "the circular velocity: flag the bar zone "
+                 "(RotationCurve.with_flags) before computing resonances")
     source = "tilted rings" + (f" (free: {', '.join(free)})" if free else "")
     curve = RotationCurve(r_mid[ok], v_out[ok], e_out[ok],
                           rings.vrad_kms[ok] if fit_radial else None,

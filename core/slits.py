@@ -266,12 +266,24 @@ def _slab_fraction(center, lo, hi, g0, g1):
     """Fraction of a unit pixel where ``lo <= f <= hi`` for a linear ``f``.
 
     ``center`` is ``f`` at the pixel centre and ``(g0, g1)`` its gradient
-    per pixel. Exact (closed form).
+    per pixel. Exact (closed form): ``CDF(hi - c) - CDF(lo - c)`` of the
+    trapezoidal distribution, evaluated only where an edge crosses the
+    pixel (``|edge - c| < (|g0| + |g1|) / 2``).
     """
     a = np.maximum(np.abs(g0), np.abs(g1))
     b = np.minimum(np.abs(g0), np.abs(g1))
-    return np.clip(_cdf_box_sum(hi - center, a, b)
-                   - _cdf_box_sum(lo - center, a, b), 0.0, 1.0)
+    pad = 0.5 * (a + b)
+    t_hi = hi - center
+    t_lo = lo - center
+    out = (t_hi > -pad).astype(float)          # 1 unless entirely above hi
+    out[t_lo >= pad] = 0.0                      # entirely below lo
+    k = np.flatnonzero((np.abs(t_hi) < pad) & (t_lo < pad))
+    if k.size:
+        out[k] = _cdf_box_sum(t_hi[k], a[k], b[k])
+    k = np.flatnonzero((np.abs(t_lo) < pad) & (t_hi > -pad))
+    if k.size:
+        out[k] -= _cdf_box_sum(t_lo[k], a[k], b[k])
+    return np.clip(out, 0.0, 1.0)
 
 
 def _clip_square_area(px, py, planes):
@@ -324,6 +336,37 @@ def _clip_square_area(px, py, planes):
     return 0.5 * np.abs(np.where(live, cross, 0.0).sum(axis=1))
 
 
+def _column_interval(grad, off, lo, hi, j, pad_sign):
+    """Columns ``i`` of pixel row ``j`` where ``lo - p <= f <= hi + p``.
+
+    ``f = g0 i + g1 j + off`` is linear; ``p = pad_sign (|g0| + |g1|) / 2``
+    (``pad_sign = +1``: the pixel square touches the slab; ``-1``: it lies
+    entirely inside). Returns real bounds ``(a, b)``, possibly empty.
+    """
+    g0, g1 = grad[:, 0], grad[:, 1]
+    pad = pad_sign * 0.5 * (np.abs(g0) + np.abs(g1))
+    base = g1 * j + off
+    lo_v, hi_v = lo - pad - base, hi + pad - base
+    flat_g = np.abs(g0) < 1e-12 * (np.abs(g1) + 1e-300)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ta, tb = lo_v / g0, hi_v / g0
+    ok_flat = (lo_v <= 0) & (hi_v >= 0)
+    a = np.where(flat_g, np.where(ok_flat, -np.inf, np.inf), np.minimum(ta, tb))
+    b = np.where(flat_g, np.where(ok_flat, np.inf, -np.inf), np.maximum(ta, tb))
+    empty = lo_v > hi_v                      # slab thinner than a pixel's reach
+    return np.where(empty, np.inf, a), np.where(empty, -np.inf, b)
+
+
+def _expand_runs(first, count):
+    """Concatenate integer runs ``first[r] .. first[r] + count[r] - 1``.
+
+    Returns the run index of every element and the element values.
+    """
+    run = np.repeat(np.arange(first.size), count)
+    start = np.cumsum(count) - count
+    return run, first[run] + (np.arange(run.size) - start[run])
+
+
 def _strip_pixels(g_x, x0, g_y, y0, x_lo, x_hi, y_lo, y_hi, shape):
     """Pixels overlapping strips ``x_lo <= X <= x_hi``, ``y_lo <= Y <= y_hi``.
 
@@ -336,15 +379,17 @@ def _strip_pixels(g_x, x0, g_y, y0, x_lo, x_hi, y_lo, y_hi, shape):
     -------
     strip, flat, weight, x, y : numpy.ndarray
         One entry per (strip, pixel) with a positive overlap; ``weight``
-        is the exact area fraction: closed form where only one pair of
-        strip edges crosses the pixel, polygon clipping where both do.
+        is the exact area fraction: 1 for pixels entirely inside (found per
+        pixel row from the strip's edges, without a per-pixel test), closed
+        form where only one pair of strip edges crosses the pixel, polygon
+        clipping where both do.
     """
     ny, nx = shape
     n = g_x.shape[0]
     if n == 0:
         e = np.empty(0)
         return e.astype(np.int64), e.astype(np.int64), e, e, e
-    # Corners of each strip in pixel coordinates (pixel = M^-1 (lon - lon0)).
+    # Rows spanned by each strip (corners in pixel space: p = M^-1 (lon - lon0)).
     mat = np.stack([g_x, g_y], axis=1)                      # (n, 2, 2)
     inv = np.linalg.inv(mat)
     cx = np.stack([x_lo, x_hi, x_hi, x_lo], axis=1) - x0[:, None]
@@ -352,58 +397,74 @@ def _strip_pixels(g_x, x0, g_y, y0, x_lo, x_hi, y_lo, y_hi, shape):
     corner_py = inv[:, 1, 0, None] * cx + inv[:, 1, 1, None] * cy
     j_lo = np.clip(np.floor(corner_py.min(axis=1) - 1.0), -2, ny + 1).astype(np.int64)
     j_hi = np.clip(np.ceil(corner_py.max(axis=1) + 1.0), -2, ny + 1).astype(np.int64)
-    n_rows = np.maximum(j_hi - j_lo + 1, 0)
-    strip_r = np.repeat(np.arange(n), n_rows)
-    start = np.cumsum(n_rows) - n_rows
-    j = j_lo[strip_r] + (np.arange(strip_r.size) - start[strip_r])
-    # Column interval of each (strip, row) where the pixel square can touch
-    # both slabs: |f(centre) - mid| <= half + (|g0| + |g1|) / 2.
-    i_lo = np.full(strip_r.size, -2.0)
-    i_hi = np.full(strip_r.size, nx + 1.0)
-    for grad, off, lo, hi in ((g_x, x0, x_lo, x_hi), (g_y, y0, y_lo, y_hi)):
-        g0, g1 = grad[strip_r, 0], grad[strip_r, 1]
-        pad = 0.5 * (np.abs(g0) + np.abs(g1))
-        base = g1 * j + off[strip_r]
-        lo_v, hi_v = lo[strip_r] - pad - base, hi[strip_r] + pad - base
-        with np.errstate(divide="ignore", invalid="ignore"):
-            ta, tb = lo_v / g0, hi_v / g0
-        flat_g = np.abs(g0) < 1e-12 * (np.abs(g1) + 1e-300)
-        ok_flat = (lo_v <= 0) & (hi_v >= 0)
-        a_ = np.where(flat_g, np.where(ok_flat, -np.inf, np.inf), np.minimum(ta, tb))
-        b_ = np.where(flat_g, np.where(ok_flat, np.inf, -np.inf), np.maximum(ta, tb))
-        i_lo = np.maximum(i_lo, a_)
-        i_hi = np.minimum(i_hi, b_)
-    i_lo = np.clip(i_lo, -3.0, nx + 2.0)
-    i_hi = np.clip(i_hi, -3.0, nx + 2.0)
-    i_first = np.ceil(i_lo).astype(np.int64)
-    n_cols = np.maximum(np.floor(i_hi).astype(np.int64) - i_first + 1, 0)
-    sr = np.repeat(np.arange(strip_r.size), n_cols)
-    start = np.cumsum(n_cols) - n_cols
-    i = i_first[sr] + (np.arange(sr.size) - start[sr])
-    j = j[sr]
-    strip = strip_r[sr]
-    fi, fj = i.astype(float), j.astype(float)
-    gx, gy = g_x[strip], g_y[strip]
-    x = gx[:, 0] * fi + gx[:, 1] * fj + x0[strip]
-    y = gy[:, 0] * fi + gy[:, 1] * fj + y0[strip]
-    f_x = _slab_fraction(x, x_lo[strip], x_hi[strip], gx[:, 0], gx[:, 1])
-    f_y = _slab_fraction(y, y_lo[strip], y_hi[strip], gy[:, 0], gy[:, 1])
-    weight = f_x * f_y
-    both = (f_x > 0) & (f_x < 1) & (f_y > 0) & (f_y < 1)
-    if np.any(both):
-        k = np.flatnonzero(both)
-        s = strip[k]
-        planes = np.empty((k.size, 4, 3))
-        for q, (grad, off, bound, sign) in enumerate((
-                (g_x, x0, x_lo, 1.0), (g_x, x0, x_hi, -1.0),
-                (g_y, y0, y_lo, 1.0), (g_y, y0, y_hi, -1.0))):
-            planes[:, q, 0] = sign * grad[s, 0]
-            planes[:, q, 1] = sign * grad[s, 1]
-            planes[:, q, 2] = sign * (off[s] - bound[s])
-        weight[k] = _clip_square_area(fi[k], fj[k], planes)
+    strip_r, j = _expand_runs(j_lo, np.maximum(j_hi - j_lo + 1, 0))
+    fj_r = j.astype(float)
+    gxr, gyr = g_x[strip_r], g_y[strip_r]
+    x0r, y0r = x0[strip_r], y0[strip_r]
+    xlo, xhi, ylo, yhi = x_lo[strip_r], x_hi[strip_r], y_lo[strip_r], y_hi[strip_r]
+    # Candidate columns (pixel touches both slabs) and interior columns
+    # (pixel entirely inside both) of every (strip, row).
+    ca, cb = _column_interval(gxr, x0r, xlo, xhi, fj_r, 1.0)
+    da, db = _column_interval(gyr, y0r, ylo, yhi, fj_r, 1.0)
+    c_first = np.ceil(np.clip(np.maximum(ca, da), -3.0, nx + 2.0)).astype(np.int64)
+    c_last = np.floor(np.clip(np.minimum(cb, db), -3.0, nx + 2.0)).astype(np.int64)
+    c_last = np.minimum(c_last, nx + 1)
+    c_first = np.maximum(c_first, -2)
+    ia, ib = _column_interval(gxr, x0r, xlo, xhi, fj_r, -1.0)
+    ka, kb = _column_interval(gyr, y0r, ylo, yhi, fj_r, -1.0)
+    i_first = np.ceil(np.clip(np.maximum(ia, ka), -3.0, nx + 2.0)).astype(np.int64)
+    i_last = np.floor(np.clip(np.minimum(ib, kb), -3.0, nx + 2.0)).astype(np.int64)
+    i_first = np.maximum(i_first, c_first)
+    i_last = np.minimum(i_last, c_last)
+    has_int = i_last >= i_first
+    # Boundary runs: candidate columns left and right of the interior run.
+    left_last = np.where(has_int, i_first - 1, c_last)
+    right_first = np.where(has_int, i_last + 1, c_last + 1)
+    n_left = np.maximum(left_last - c_first + 1, 0)
+    n_right = np.maximum(c_last - right_first + 1, 0)
+    n_int = np.where(has_int, i_last - i_first + 1, 0)
+    firsts = np.concatenate([c_first, right_first, i_first])
+    counts = np.concatenate([n_left, n_right, n_int])
+    run, i = _expand_runs(firsts, counts)
+    n_r = strip_r.size
+    interior = run >= 2 * n_r
+    run = run % n_r
+    strip = strip_r[run]
+    jj = j[run]
+    fi = i.astype(float)
+    x = gxr[:, 0][run] * fi + (gxr[:, 1] * fj_r + x0r)[run]
+    y = gyr[:, 0][run] * fi + (gyr[:, 1] * fj_r + y0r)[run]
+    weight = np.ones(i.size)
+    bnd = np.flatnonzero(~interior)
+    if bnd.size:
+        rb = run[bnd]
+        f_x = np.ones(bnd.size)
+        f_y = np.ones(bnd.size)
+        for frac, coord, grad, lo_a, hi_a in ((f_x, x, gxr, xlo, xhi),
+                                              (f_y, y, gyr, ylo, yhi)):
+            g0, g1 = grad[rb, 0], grad[rb, 1]
+            pad = 0.5 * (np.abs(g0) + np.abs(g1))
+            c = coord[bnd]
+            near = np.flatnonzero((c - lo_a[rb] < pad) | (hi_a[rb] - c < pad))
+            frac[near] = _slab_fraction(c[near], lo_a[rb][near], hi_a[rb][near],
+                                        g0[near], g1[near])
+        wb = f_x * f_y
+        both = (f_x > 0) & (f_x < 1) & (f_y > 0) & (f_y < 1)
+        if np.any(both):
+            k = np.flatnonzero(both)
+            s = strip[bnd[k]]
+            planes = np.empty((k.size, 4, 3))
+            for q, (grad, off, bound, sign) in enumerate((
+                    (g_x, x0, x_lo, 1.0), (g_x, x0, x_hi, -1.0),
+                    (g_y, y0, y_lo, 1.0), (g_y, y0, y_hi, -1.0))):
+                planes[:, q, 0] = sign * grad[s, 0]
+                planes[:, q, 1] = sign * grad[s, 1]
+                planes[:, q, 2] = sign * (off[s] - bound[s])
+            wb[k] = _clip_square_area(fi[bnd[k]], jj[bnd[k]].astype(float), planes)
+        weight[bnd] = wb
     keep = weight > 1e-12
-    inside = (i >= 0) & (i < nx) & (j >= 0) & (j < ny)
-    flat = np.where(inside, j * nx + i, -1)
+    inside = (i >= 0) & (i < nx) & (jj >= 0) & (jj < ny)
+    flat = np.where(inside, jj * nx + i, -1)
     return strip[keep], flat[keep], weight[keep], x[keep], y[keep]
 
 

@@ -26,8 +26,7 @@ both the spectrum and the continuum sums.
 
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 from typing import Sequence
 
 import astropy.units as u
@@ -35,9 +34,9 @@ import numpy as np
 import scipy.sparse
 
 from . import tw as _tw
-from .coords import sky_grid
+from .coords import sky_grid, sky_to_lon
 from .dataset import Cube
-from .errors import (DataContentError, FitError, GyrometerError, SpectralAxisError)
+from .errors import DataContentError, FitError, SpectralAxisError
 from .geometry import DiskGeometry
 from .losvd import (C_KMS, LogGrid, LosvdFitOptions, SpectrumFit, Template,
                     fit_spectrum, fourier_shift, mask_from_ranges,
@@ -113,6 +112,10 @@ class StellarSettings:
         well above the slits' signal-to-noise.
     template_iterations : int
         Align-and-stack iterations of a galaxy template.
+    template_groups : int
+        The aperture's spaxels are summed in this many equal-count bins of
+        ``X`` (along the line of nodes, where the rotation is nearly
+        constant) before the bins are aligned and stacked.
     step_kms : float or None
         Log-wavelength pixel, km/s (default: the cube's finest velocity
         step).
@@ -140,6 +143,7 @@ class StellarSettings:
     template: str = "galaxy"
     template_radius_arcsec: float = 1.5
     template_min_spaxels: int = 25
+    template_groups: int = 9
     template_iterations: int = 2
     step_kms: float | None = None
     n_mc: int = 30
@@ -152,16 +156,16 @@ class StellarSettings:
             if value is not None:
                 if (len(value) != 2 or not all(np.isfinite(value))
                         or value[0] <= 0 or value[1] <= value[0]):
-                    raise GyrometerError(f"{name} must be (low, high) in Angstrom "
+                    raise FitError(f"{name} must be (low, high) in Angstrom "
                                          "with 0 < low < high", keyword=name,
                                          value=value)
                 object.__setattr__(self, name, (float(value[0]), float(value[1])))
         if self.n_mc < 0 or self.template_iterations < 0:
-            raise GyrometerError("n_mc and template_iterations must be >= 0",
+            raise FitError("n_mc and template_iterations must be >= 0",
                                  keyword="n_mc/template_iterations",
                                  value=(self.n_mc, self.template_iterations))
         if self.template_radius_arcsec <= 0:
-            raise GyrometerError("template_radius_arcsec must be positive",
+            raise FitError("template_radius_arcsec must be positive",
                                  keyword="template_radius_arcsec",
                                  value=self.template_radius_arcsec)
         # validates the fit options early
@@ -398,6 +402,12 @@ def slit_spectra(cube: Cube, weights: Sequence[SlitWeights], *,
         (layout.weight[inside], (layout.row[inside], col_entry[inside])),
         shape=(n_rows, union.size))
     rmat2 = rmat.multiply(rmat).tocsr()
+    # Single-precision data are multiplied in single precision: a row holds a
+    # handful of pixels (one pixel along X), so the relative rounding is
+    # ~1e-7; rows are then accumulated in double precision.
+    dtype = np.float32 if np.dtype(cube.data.dtype).itemsize <= 4 else np.float64
+    rmat = rmat.astype(dtype)
+    rmat2 = rmat2.astype(dtype)
     n_chan = c_last - c_first + 1
     has_var = cube.variance is not None
     row_flux = np.zeros((n_rows, n_chan))
@@ -412,28 +422,27 @@ def slit_spectra(cube: Cube, weights: Sequence[SlitWeights], *,
         check_cancel(cancel, "summing slit spectra")
         stop = min(start + step, n_chan)
         sl = slice(c_first + start, c_first + stop)
-        block = np.asarray(cube.data[sl]).reshape(stop - start, ny * nx)[:, union]
-        block = block.astype(np.float64)
+        block = _read_block(cube.data, sl, ny * nx, union, dtype)
         nan = ~np.isfinite(block)
         if nan.any():
             bad_pix |= nan.any(axis=0)
             block[nan] = 0.0
-        row_flux[:, start:stop] = (rmat @ block.T)
+        # (a C-ordered transpose makes the sparse product 3-4x faster)
+        row_flux[:, start:stop] = rmat @ np.ascontiguousarray(block.T)
         ex_flux[:, start:stop] = block[:, col_extra].T
-        bsel = in_band[start:stop]
-        if bsel.any():
-            cont += (block[bsel] * dlam[start:stop][bsel, None]).sum(axis=0)
+        band_w = np.where(in_band[start:stop], dlam[start:stop], 0.0).astype(dtype)
+        if band_w.any():
+            cont += band_w @ block
         if has_var:
-            vb = np.asarray(cube.variance[sl]).reshape(stop - start, ny * nx)[:, union]
-            vb = vb.astype(np.float64)
+            vb = _read_block(cube.variance, sl, ny * nx, union, dtype)
             vnan = ~np.isfinite(vb)
             if vnan.any():
                 bad_pix |= vnan.any(axis=0)
                 vb[vnan] = 0.0
-            row_var[:, start:stop] = (rmat2 @ vb.T)
+            row_var[:, start:stop] = rmat2 @ np.ascontiguousarray(vb.T)
             ex_var[:, start:stop] = vb[:, col_extra].T
-            if bsel.any():
-                cont_var += (vb[bsel] * (dlam[start:stop][bsel, None]) ** 2).sum(axis=0)
+            if band_w.any():
+                cont_var += (band_w * band_w) @ vb
         report(progress, stop, n_chan, "summing slit spectra")
     # rows, masking and <X> exactly as the other routes
     valid = inside & ~bad_pix[col_entry]
@@ -471,6 +480,13 @@ def slit_spectra(cube: Cube, weights: Sequence[SlitWeights], *,
         integrals=integrals, continuum_map=cmap.reshape(ny, nx),
         extra_flux=ex_flux[:, sel] if extra.size else None,
         extra_variance=(ex_var[:, sel] if (extra.size and has_var) else None))
+
+
+def _read_block(array, channels: slice, n_pix: int, columns: np.ndarray, dtype):
+    """Channels ``channels`` of a (possibly memory-mapped, big-endian) cube,
+    only the pixel ``columns``, as a native ``dtype`` array (n_chan, n_col)."""
+    raw = np.asarray(array[channels])
+    return raw.reshape(raw.shape[0], n_pix)[:, columns].astype(dtype, copy=False)
 
 
 # -- resampling helper ---------------------------------------------------------
@@ -573,8 +589,11 @@ def _good_pixels(grid: LogGrid, settings: StellarSettings, vsys_kms: float,
 
 
 def _template_pixels(cube: Cube, geometry: DiskGeometry, radius_arcsec: float,
-                     min_pixels: int, max_pixels: int = 400) -> np.ndarray:
-    """Flat indices of the central aperture (at least ``min_pixels``)."""
+                     min_pixels: int, n_groups: int,
+                     max_pixels: int = 2000) -> tuple[np.ndarray, np.ndarray]:
+    """Flat indices of the central aperture (at least ``min_pixels``) and a
+    group label per pixel: ``n_groups`` equal-count bins of ``X`` (along the
+    line of nodes), where the rotation velocity is nearly constant."""
     grid = sky_grid(cube.wcs, cube.spatial_shape, geometry.ra_deg, geometry.dec_deg)
     r = np.hypot(grid.east_arcsec, grid.north_arcsec).ravel()
     order = np.argsort(r)
@@ -582,8 +601,14 @@ def _template_pixels(cube: Cube, geometry: DiskGeometry, radius_arcsec: float,
     n = min(n, r.size)
     # keep whole rings of equal distance, so a symmetric aperture stays symmetric
     limit = r[order[n - 1]] * (1.0 + 1e-9) + 1e-12
-    inside = order[r[order] <= limit]
-    return inside[:max_pixels]
+    inside = order[r[order] <= limit][:max_pixels]
+    x, _ = sky_to_lon(grid.east_arcsec.ravel()[inside],
+                      grid.north_arcsec.ravel()[inside], geometry.pa_deg)
+    labels = np.empty(inside.size, np.int64)
+    for g, part in enumerate(np.array_split(np.argsort(x, kind="stable"),
+                                            max(1, min(n_groups, inside.size)))):
+        labels[part] = g
+    return inside, labels
 
 
 def _resolve_template(cube: Cube, settings: StellarSettings, template) -> Template | None:
@@ -677,9 +702,11 @@ def measure_absorption(cube: Cube, geometry: DiskGeometry,
                                hint=f"the cube covers {lo:.1f}-{hi:.1f} Angstrom")
     window = (max(window[0], lo), min(window[1], hi))
     user_template = _resolve_template(cube, settings, template)
-    extra = (None if user_template is not None else
-             _template_pixels(cube, geometry, settings.template_radius_arcsec,
-                              settings.template_min_spaxels))
+    extra = labels = None
+    if user_template is None:
+        extra, labels = _template_pixels(cube, geometry, settings.template_radius_arcsec,
+                                         settings.template_min_spaxels,
+                                         settings.template_groups)
     spectra = slit_spectra(cube, weights, window_A=window,
                            band_A=settings.continuum_band_A, symmetric=symmetric,
                            extra_pixels=extra, offsets_arcsec=offsets,
@@ -697,13 +724,20 @@ def measure_absorption(cube: Cube, geometry: DiskGeometry,
     if user_template is None:
         check_cancel(cancel, "building the template")
         report(progress, 0, 1, "building the galaxy template")
-        tpl_flux = rebin.flux(spectra.extra_flux)
-        tpl_var = rebin.variance(spectra.extra_variance)
+        n_groups = int(labels.max()) + 1
+        group_flux = np.zeros((n_groups, wave.size))
+        np.add.at(group_flux, labels, spectra.extra_flux)
+        tpl_flux = rebin.flux(group_flux)
+        tpl_var = None
+        if spectra.extra_variance is not None:
+            group_var = np.zeros((n_groups, wave.size))
+            np.add.at(group_var, labels, spectra.extra_variance)
+            tpl_var = rebin.variance(group_var)
         user_template = galaxy_template(
             grid, tpl_flux, tpl_var, geometry.vsys_kms,
             iterations=settings.template_iterations, good=good,
             options=opts, air=air,
-            origin=f"galaxy centre ({tpl_flux.shape[0]} central spaxels)")
+            origin=f"galaxy centre ({extra.size} central spaxels)")
         if tpl_var is not None:
             finite = np.all(np.isfinite(tpl_flux), axis=0)
             tpl_sd = np.sqrt(np.maximum(np.nansum(tpl_var, axis=0)[finite], 0.0))
@@ -785,7 +819,7 @@ def measure_absorption(cube: Cube, geometry: DiskGeometry,
         v_mean[k] = float(shift_to_cz(fit.mean_shift_kms, vsys) - vsys)
         if n_mc:
             v_err[k] = _half_range(draws[k])
-        else:  # formal error (Gauss-Hermite only; NaN for a binned LOSVD)
+        else:  # formal error of the Gauss-Hermite first moment
             v_err[k] = float(fit.mean_shift_err_kms * (1.0 + vsys / C_KMS))
         with np.errstate(invalid="ignore", divide="ignore"):
             snr = (float(np.nanmedian((f / err)[fit.good])) if var is not None

@@ -113,6 +113,9 @@ CUBE_MEMORY_FACTOR = 1.25
 #: budget (chunks of draws x slit pixels): four times the file size.
 MAPS_MEMORY_FACTOR = 4.0
 
+#: Seconds to wait for a Dask scheduler to answer before giving up.
+DASK_CONNECT_TIMEOUT_S = 20.0
+
 _SAMPLE_KEYS = ("name", "recipes", "folder", "table", "output", "latex_style")
 _ENGINE_KEYS = ("kind", "workers", "scheduler", "memory_fraction")
 _RESULTS_ECSV = "results.ecsv"
@@ -794,6 +797,14 @@ class _SerialEngine:
         pass
 
 
+def _ignore_interrupts() -> None:
+    """Pool workers ignore Ctrl-C: the parent stops them through the cancel
+    file, so no worker prints a traceback."""
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
 class _LocalEngine:
     """A process pool on this machine, holding back work that would not fit
     in memory (see :func:`estimate_memory_bytes`)."""
@@ -816,7 +827,8 @@ class _LocalEngine:
                   multiprocessing.get_all_start_methods() else "spawn")
         self.pool = ProcessPoolExecutor(
             max_workers=self.workers,
-            mp_context=multiprocessing.get_context(method))
+            mp_context=multiprocessing.get_context(method),
+            initializer=_ignore_interrupts)
 
     def submit(self, task: GalaxyTask):
         return self.pool.submit(run_galaxy, task)
@@ -856,7 +868,7 @@ class _DaskEngine:
 
     kind = "dask"
 
-    def __init__(self, scheduler: str, timeout_s: float = 20.0) -> None:
+    def __init__(self, scheduler: str) -> None:
         try:
             from distributed import Client
         except ImportError as exc:
@@ -866,7 +878,7 @@ class _DaskEngine:
                 hint="install it with: pip install 'gyrometer[dask]', or use "
                      "the local engine") from exc
         try:
-            self.client = Client(scheduler, timeout=timeout_s,
+            self.client = Client(scheduler, timeout=DASK_CONNECT_TIMEOUT_S,
                                  set_as_default=False)
         except (OSError, TimeoutError, ValueError) as exc:
             raise GyrometerError(f"cannot reach the Dask scheduler ({exc})",
@@ -920,8 +932,9 @@ class SampleStatus:
         count as running).
     elapsed_s : float
     eta_s : float or None
-        Mean duration of the galaxies finished in this run x (pending +
-        running) / workers; ``None`` until one has finished.
+        Mean duration of the galaxies finished in this run (failed ones
+        only while none has finished) x (pending + running) / workers;
+        ``None`` until one has ended.
     last : str
         What just happened, in a few words.
     """
@@ -1175,9 +1188,12 @@ def run_sample(spec: SampleSpec, *, engine: str | None = None,
                                     for o in outcomes.values())
         pending = len(queue)
         n_workers = getattr(eng, "workers", 1) or 1
-        eta = (None if not durations else
-               sum(durations) / len(durations) * (pending + len(running))
-               / n_workers)
+        # failures are usually quick: the mean of finished galaxies is the
+        # better guide when there are any
+        pool = [o.duration_s for o in outcomes.values()
+                if o.status == "done" and o.key] or durations
+        eta = (None if not pool else
+               sum(pool) / len(pool) * (pending + len(running)) / n_workers)
         state = SampleStatus(n_total, n_done, len(skipped), len(running),
                              n_failed, pending, time.monotonic() - t0, eta,
                              text)
@@ -1249,13 +1265,13 @@ def run_sample(spec: SampleSpec, *, engine: str | None = None,
                                  f"abruptly ({exc or type(exc).__name__}; "
                                  "killed, out of memory or crashed)"))
                 finish(outcome)
-    except KeyboardInterrupt:
-        stopped = True
+    except KeyboardInterrupt:  # Ctrl-C: running galaxies stop at their
+        stopped = True            # next check; finished ones are kept
+        with contextlib.suppress(OSError):
+            cancel_path.touch()
         if eng is not None:
-            with contextlib.suppress(Exception):
-                cancel_path.touch()
-                eng.stop(list(running))
-                eng.close(wait=False)
+            eng.stop(list(running))
+            eng.close(wait=True)
             eng = None
     finally:
         if eng is not None:
@@ -1271,8 +1287,9 @@ def run_sample(spec: SampleSpec, *, engine: str | None = None,
     n_failed = sum(o.status == "failed" for o in ordered)
     if stopped:
         raise Cancelled(
-            f"sample run stopped after {n_done + n_failed} of {n_total} "
-            f"galaxies; the {n_done} finished are kept in {run_dir} "
+            f"sample run stopped with {n_done} of {n_total} galaxies "
+            f"finished and {n_failed} failed; the finished ones are kept in "
+            f"{run_dir} "
             "(run the same command again to continue)")
     return SampleRun(run_dir, ecsv, tex, failures, manifest_path, ordered,
                      tuple(skipped), n_total, n_done, n_failed,

@@ -36,10 +36,9 @@ import numpy as np
 from scipy.special import ndtr
 
 from .dataset import Cube, MapSet, Provenance, SpectralAxis
-from .errors import GyrometerError
 from .lines import get_line
 from .losvd import C_KMS, LogGrid, Template
-from .synthetic import GalaxyModel, Truth, make_maps
+from .synthetic import GalaxyModel, ModelError, Truth, make_maps
 
 __all__ = [
     "AbsorptionLine",
@@ -101,7 +100,7 @@ BANDS = {
 def band_lines(band: str = "cat") -> tuple[AbsorptionLine, ...]:
     """The absorption lines of a band (see :data:`BANDS`)."""
     if band not in BANDS:
-        raise GyrometerError(f"unknown band; choose one of {sorted(BANDS)}",
+        raise ModelError(f"unknown band; choose one of {sorted(BANDS)}",
                              keyword="band", value=band)
     return BANDS[band]["lines"]()
 
@@ -253,7 +252,7 @@ def absorption_scene(model: GalaxyModel, *, band: str = "cat",
         grid = LogGrid.covering(lo, hi, step_kms)
         wave, edges = grid.wave_A, grid.edges_A
     else:
-        raise GyrometerError("give step_kms or step_A", keyword="step_kms/step_A")
+        raise ModelError("give step_kms or step_A", keyword="step_kms/step_A")
     peak = float(np.nanmax(maps.intensity))
     if snr is None:
         noise_sigma = model.noise_frac * peak

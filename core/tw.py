@@ -27,6 +27,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
+import scipy.sparse as sp
 
 from .dataset import Cube, MapSet
 from .errors import DataContentError, FitError, SlitError
@@ -74,6 +75,43 @@ class _Layout:
     n_slits: int
 
 
+@dataclass(frozen=True, eq=False)
+class _SlitRows:
+    """Row sums of one slit (cached by :class:`LiveMeasurer`)."""
+
+    sums: np.ndarray          # (11, n_rows)
+    bad: np.ndarray
+    row_has: np.ndarray
+    row_outside: np.ndarray
+    row_absx: np.ndarray
+    area_pix: float
+    dx_arcsec: float
+
+
+def _slit_rows(weight: SlitWeights, maps: MapSet, vsys_kms: float) -> _SlitRows:
+    layout = _layout((weight,))
+    terms, valid = _pixel_terms_maps(layout, maps, vsys_kms)
+    return _SlitRows(_row_sums(layout, terms, valid), _row_bad(layout, valid),
+                     layout.row_has, layout.row_outside, layout.row_absx,
+                     float(layout.area_pix[0]), layout.dx_arcsec)
+
+
+def _combine_rows(parts: Sequence[_SlitRows]):
+    """A row structure (for :func:`_reduce`) and sums from per-slit parts."""
+    sizes = np.array([p.row_has.size for p in parts])
+    start = np.concatenate([[0], np.cumsum(sizes)[:-1]])
+    mirror = np.concatenate([st + np.arange(n)[::-1] for st, n in zip(start, sizes)])
+    empty = np.empty(0)
+    rows = _Layout(empty.astype(np.int64), empty.astype(np.int64), empty, empty,
+                   np.repeat(np.arange(len(parts)), sizes), mirror,
+                   np.concatenate([p.row_absx for p in parts]),
+                   np.concatenate([p.row_has for p in parts]),
+                   np.concatenate([p.row_outside for p in parts]), start,
+                   np.array([p.area_pix for p in parts]), parts[0].dx_arcsec, len(parts))
+    return (rows, np.concatenate([p.sums for p in parts], axis=1),
+            np.concatenate([p.bad for p in parts]))
+
+
 def _layout(weights: Sequence[SlitWeights]) -> _Layout:
     n = len(weights)
     if n == 0:
@@ -107,8 +145,9 @@ def _gather(array, flat):
     """``array.ravel()[flat]`` with NaN where ``flat < 0``."""
     if array is None:
         return None
-    values = np.asarray(array, dtype=float).ravel()[np.maximum(flat, 0)]
-    return np.where(flat >= 0, values, np.nan)
+    values = np.asarray(array, dtype=float).ravel().take(np.maximum(flat, 0))
+    values[flat < 0] = np.nan
+    return values
 
 
 def _pixel_terms_maps(layout: _Layout, maps: MapSet, vsys_kms: float):
@@ -134,20 +173,31 @@ def _pixel_terms_maps(layout: _Layout, maps: MapSet, vsys_kms: float):
 
 
 def _row_sums(layout: _Layout, terms, valid) -> np.ndarray:
-    """The 11 per-row sums from per-entry integrands (see ``_B`` ...)."""
+    """The 11 per-row sums from per-entry integrands (see ``_B`` ...).
+
+    One sparse product ``W @ T`` with ``W[row, entry] = weight`` and the
+    integrand columns ``T`` (extra factors of the weight for the variances).
+    """
     s, sv, var_s, var_sv, cov_s_sv = terms
     w = layout.weight * valid
     x = layout.x_arcsec
-    w2 = w * w
     n_rows = layout.row_slit.size
-    out = np.empty((_NSUMS, n_rows))
-    for q, values in ((_B, w * s), (_A, w * s * x), (_C, w * sv),
-                      (_VBB, w2 * var_s), (_VAA, w2 * var_s * x * x),
-                      (_VCC, w2 * var_sv), (_VAB, w2 * var_s * x),
-                      (_VAC, w2 * cov_s_sv * x), (_VBC, w2 * cov_s_sv),
-                      (_NPIX, (w > 0).astype(float)), (_WSUM, w)):
-        out[q] = np.bincount(layout.row, weights=values, minlength=n_rows)
-    return out
+    n_ent = w.size
+    mat = sp.csr_matrix((w, (layout.row, np.arange(n_ent))), shape=(n_rows, n_ent))
+    wv = w * var_s
+    cols = np.empty((n_ent, _NSUMS))
+    cols[:, _B] = s
+    cols[:, _A] = s * x
+    cols[:, _C] = sv
+    cols[:, _VBB] = wv
+    cols[:, _VAB] = wv * x
+    cols[:, _VAA] = cols[:, _VAB] * x
+    cols[:, _VCC] = w * var_sv
+    cols[:, _VBC] = w * cov_s_sv
+    cols[:, _VAC] = cols[:, _VBC] * x
+    cols[:, _NPIX] = valid / np.where(layout.weight > 0, layout.weight, 1.0)
+    cols[:, _WSUM] = 1.0
+    return np.ascontiguousarray((mat @ cols).T)
 
 
 def _row_bad(layout: _Layout, valid) -> np.ndarray:
@@ -529,11 +579,11 @@ def measure(data: MapSet | Cube, geometry: DiskGeometry, slits: SlitSet | Sequen
 class LiveMeasurer:
     """Fast re-measurement while slits are dragged (maps route).
 
-    Caches the pixel frame and every slit's weights; :meth:`update_slit`
-    recomputes only the changed slit's weights (about a millisecond), then
-    the integrals and fit of all slits (about a millisecond for 20 slits on
-    a 500 x 500 map; see ``benchmarks/bench_tw.py``). Diagnostics are stored
-    in the result but not issued as Python warnings.
+    Caches the pixel frame, every slit's weights and every slit's binned
+    sums; :meth:`update_slit` recomputes only the changed slit (its exact
+    weights and sums), then combines all slits and refits. Diagnostics are
+    stored in the result but not issued as Python warnings. Timings: see
+    ``benchmarks/bench_tw.py``.
 
     Parameters
     ----------
@@ -549,9 +599,16 @@ class LiveMeasurer:
         self._exclude = tuple(exclude)
         self._geometry = geometry
         self._frame = pixel_frame(maps.wcs, maps.shape, geometry)
+        self._set_slits(slits)
+
+    def _set_slits(self, slits: SlitSet) -> None:
+        if len(slits) == 0:
+            raise SlitError("the slit set is empty", hint="add at least one slit")
         self._slits = slits
-        self._weights = list(slit_weights(slits, geometry, maps.wcs, maps.shape,
-                                          frame=self._frame))
+        self._weights = list(slit_weights(slits, self._geometry, self._maps.wcs,
+                                          self._maps.shape, frame=self._frame))
+        self._parts = [_slit_rows(w, self._maps, self._geometry.vsys_kms)
+                       for w in self._weights]
 
     @property
     def slits(self) -> SlitSet:
@@ -567,32 +624,34 @@ class LiveMeasurer:
 
     def measure(self) -> TWMeasurement:
         """The measurement for the current slits and geometry."""
-        return measure(self._maps, self._geometry, self._slits,
-                       weights=self._weights, warn=False)
+        rows, sums, bad = _combine_rows(self._parts)
+        items, offsets, halves = _slit_meta(self._slits)
+        integrals = _reduce(rows, sums, bad, self._slits.symmetric, offsets, halves)
+        return _assemble(integrals, self._geometry, "maps", self._exclude, False,
+                         self._maps.tracer)
 
     def update_slit(self, index: int, slit: Slit) -> TWMeasurement:
-        """Replace slit ``index`` and re-measure (only its weights are recomputed)."""
+        """Replace slit ``index`` and re-measure (only that slit is recomputed)."""
         self._slits = self._slits.replaced(index, slit)
         self._weights[index] = slit_weights((slit,), self._geometry, self._maps.wcs,
                                             self._maps.shape, frame=self._frame)[0]
+        self._parts[index] = _slit_rows(self._weights[index], self._maps,
+                                        self._geometry.vsys_kms)
         return self.measure()
 
     def set_slits(self, slits: SlitSet) -> TWMeasurement:
         """Replace the whole slit set and re-measure."""
-        self._slits = slits
-        self._weights = list(slit_weights(slits, self._geometry, self._maps.wcs,
-                                          self._maps.shape, frame=self._frame))
+        self._set_slits(slits)
         return self.measure()
 
     def set_geometry(self, geometry: DiskGeometry) -> TWMeasurement:
-        """Change the geometry (weights are recomputed unless only Vsys,
-        inclination, distance or errors changed) and re-measure."""
+        """Change the geometry and re-measure (weights are recomputed when the
+        centre or PA changed, sums when Vsys changed too)."""
         old = self._geometry
         self._geometry = geometry
         if (old.ra_deg, old.dec_deg) != (geometry.ra_deg, geometry.dec_deg):
             self._frame = pixel_frame(self._maps.wcs, self._maps.shape, geometry)
-        if (old.ra_deg, old.dec_deg, old.pa_deg) != (geometry.ra_deg, geometry.dec_deg,
-                                                     geometry.pa_deg):
-            self._weights = list(slit_weights(self._slits, geometry, self._maps.wcs,
-                                              self._maps.shape, frame=self._frame))
+        if (old.ra_deg, old.dec_deg, old.pa_deg, old.vsys_kms) != (
+                geometry.ra_deg, geometry.dec_deg, geometry.pa_deg, geometry.vsys_kms):
+            self._set_slits(self._slits)
         return self.measure()

@@ -94,7 +94,6 @@ def test_dragging_the_nodes_handle_turns_the_position_angle(opened, qtbot):
     pa0 = c.geometry.pa_deg
     # put the handle 10 degrees further from north through east, then release
     from gyrometer.core.coords import lon_to_sky
-    from gyrometer.core.coords import sky_to_lon  # noqa: F401 - frame check below
     east, north = lon_to_sky(a, 0.0, pa0 + 10.0)
     px, py = frame.to_pixel(east, north)
     overlay.pa_handle.setPos(float(px), float(py))
@@ -189,3 +188,29 @@ def test_moment_dialog_returns_core_settings():
     assert isinstance(chosen, MomentSettings)
     assert chosen.window_halfwidth_kms == 321.0 and chosen.snr_threshold == 5.0
     assert chosen.vsys_kms == 2000.0
+
+
+def test_dropping_a_file_on_the_window_opens_it(window, small_mapset_file, qtbot, idle):
+    from PySide6.QtCore import QMimeData, QPoint, QUrl
+    from PySide6.QtGui import QDropEvent
+
+    path, _ = small_mapset_file
+    mime = QMimeData()
+    mime.setUrls([QUrl.fromLocalFile(str(path))])
+    event = QDropEvent(QPointF(QPoint(300, 300)), Qt.DropAction.CopyAction, mime,
+                       Qt.MouseButton.NoButton, Qt.KeyboardModifier.NoModifier)
+    window.dropEvent(event)
+    idle()
+    assert window.controller.maps is not None
+    assert "LBDP-test" in window.windowTitle()
+
+
+def test_unsaved_edits_mark_the_window_title(opened, tmp_path):
+    c = opened.controller
+    c.select_slit(0)
+    c.nudge_slit(0.5)
+    assert opened.isWindowModified()
+    opened._session_path = str(tmp_path / "s.toml")
+    opened.save_session()
+    assert not opened.isWindowModified()
+    assert (tmp_path / "s.toml").is_file()

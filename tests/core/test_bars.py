@@ -68,6 +68,8 @@ def test_rotation_rate_monte_carlo():
     assert slow.classification == "slow"
     with pytest.raises(FitError, match="corotation was not found"):
         rotation_rate(np.full(10, np.nan), 20.0, 1.0, rng)
+    with pytest.raises(GeometryError, match="bar-length error"):
+        rotation_rate(cr, 20.0, -1.0, rng)
 
 
 def _barred_galaxy(amplitude=0.5, seed=0):

@@ -487,3 +487,36 @@ def test_mapset_from_a_cube_file_says_so(tmp_path):
     path = write_cube(tmp_path / "c.fits", _cube())
     with pytest.raises(DataContentError, match="c.fits.*cube, not a map set"):
         load_mapset(path)
+
+
+def test_load_cube_by_hdu_name_and_unknown_name(tmp_path):
+    header = _cube_header()
+    data = _data()
+    hdus = fits.HDUList([fits.PrimaryHDU(),
+                         fits.ImageHDU(data, header, name="LINECUBE")])
+    hdus.writeto(tmp_path / "c.fits")
+    cube = load_cube(tmp_path / "c.fits", hdu="LINECUBE")
+    np.testing.assert_array_equal(cube.data, data)
+    assert cube.provenance.hdu == "LINECUBE"
+    with pytest.raises(InputFileError, match="c.fits.*no HDU named 'FLUX'"):
+        load_cube(tmp_path / "c.fits", hdu="FLUX")
+
+
+def test_load_cube_applies_unsigned_16_bit_convention(tmp_path):
+    # FITS standard 4.0 sec. 5.2.5: unsigned integers stored with BZERO 32768
+    values = np.array([0, 1, 40000, 65535], dtype=np.uint16)
+    raw = np.resize(values, NC * NY * NX).reshape(NC, NY, NX)
+    fits.PrimaryHDU(raw, _cube_header()).writeto(tmp_path / "u16.fits")
+    assert fits.getheader(tmp_path / "u16.fits")["BZERO"] == 32768
+    cube = load_cube(tmp_path / "u16.fits")
+    np.testing.assert_array_equal(cube.data, raw.astype(np.float32))
+
+
+def test_cube_data_stay_float32_memory_map(tmp_path):
+    path = write_cube(tmp_path / "c.fits", _cube())
+    cube = load_cube(path)
+    assert cube.data.dtype.itemsize == 4  # never promoted to float64
+    base = cube.data
+    while getattr(base, "base", None) is not None and not isinstance(base, np.memmap):
+        base = base.base
+    assert isinstance(base, np.memmap) or "mmap" in type(base).__name__

@@ -96,8 +96,8 @@ def test_omega_and_kappa_agree_with_galpy_to_0p1_percent(name):
     r_kpc = np.array([0.7, 1.5, 3.0, 6.0, 10.0, 15.0])
 
     def v_of(r):
-        return np.array([vcirc(pot, x * u.kpc, ro=8.0, vo=220.0, quantity=True)
-                         .to_value(u.km / u.s) for x in np.atleast_1d(r)])
+        return vcirc(pot, np.atleast_1d(r) * u.kpc, ro=8.0, vo=220.0,
+                     quantity=True).to_value(u.km / u.s)
 
     curve = FunctionCurve(v_of, (0.5, 20.0))
     v = curve.v(r_kpc)

@@ -173,3 +173,19 @@ def test_kinematic_and_photometric_geometry_of_a_synthetic_barred_galaxy():
     assert phot.inc_deg == pytest.approx(55.0, abs=3.0)
     geometry = kin.apply_to(TRUE.with_(distance_mpc=20.0), keep=())
     assert geometry.distance_mpc == 20.0 and geometry.pa_err_deg > 0
+
+
+def test_kinematic_errors_match_the_scatter_over_noise_realisations():
+    # the covariance-based errors should describe the spread of the
+    # estimates over independent noise draws (within a factor ~1.5)
+    pas, incs, errs_pa, errs_inc = [], [], [], []
+    for seed in range(10):
+        est = kinematic_geometry(_disk(n=40, noise_kms=15.0, seed=100 + seed),
+                                 initial=TRUE)
+        pas.append(est.pa_deg)
+        incs.append(est.inc_deg)
+        errs_pa.append(est.pa_err_deg)
+        errs_inc.append(est.inc_err_deg)
+    assert np.std(pas, ddof=1) / np.mean(errs_pa) == pytest.approx(1.0, abs=0.5)
+    assert np.std(incs, ddof=1) / np.mean(errs_inc) == pytest.approx(1.0, abs=0.5)
+    assert np.mean(pas) == pytest.approx(122.0, abs=3 * np.mean(errs_pa))

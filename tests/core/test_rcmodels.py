@@ -8,7 +8,7 @@ from scipy.special import i0, i1, k0, k1
 
 from gyrometer.core.errors import RotationCurveError
 from gyrometer.core.rcmodels import (MODEL_NAMES, arctan_curve, bertola_curve,
-                                     choose_model, disk_halo_curve,
+                                     choose_model, disk_halo_curve, fit_table,
                                      fit_curve_models, freeman_disk_curve,
                                      polyex_curve, pseudo_isothermal_curve)
 from gyrometer.core.rotation import RotationCurve
@@ -83,6 +83,9 @@ def test_all_models_fit_and_are_ranked_by_bic():
     assert arctan.bic - fits[0].bic < 2.0
     with pytest.raises(RotationCurveError, match="no fitted model named"):
         choose_model(fits, "nfw")
+    table = fit_table(fits)
+    assert list(table["model"]) == [f.name for f in fits]
+    assert table["delta_bic"][0] == 0.0 and np.all(table["delta_bic"] >= 0)
 
 
 def test_model_derivative_matches_the_analytic_arctan_derivative():

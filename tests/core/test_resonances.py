@@ -129,6 +129,21 @@ def test_rising_then_flat_curve_has_two_ilrs_for_a_slow_pattern():
     assert none["ILR (inner)"].status == STATUS_NONE
     assert none["ILR (outer)"].status == STATUS_NONE
     assert "peaks" in none["ILR (outer)"].note
+    # the table says how many ILRs there are, and in what fraction of draws:
+    # Omega_p uniform-ish around the peak gives all three cases
+    rng = np.random.default_rng(4)
+    table = resonance_budget(curve, 0.5 * peak * KMS_ARCSEC, rng=rng,
+                             n_draws=60, vary_curve=False, n_grid=300)
+    assert table.ilr_count == 2
+    assert table.ilr_count_fractions == (0.0, 0.0, 1.0)
+    spread = resonance_budget(curve, peak * KMS_ARCSEC,
+                              omega_p_p16=0.8 * peak * KMS_ARCSEC,
+                              omega_p_p84=1.2 * peak * KMS_ARCSEC, rng=rng,
+                              n_draws=200, vary_curve=False, n_grid=300)
+    f0, f1, f2 = spread.ilr_count_fractions
+    assert f1 == 0.0  # a tangency has probability zero
+    assert f0 == pytest.approx(0.5, abs=0.1) and f2 == pytest.approx(0.5, abs=0.1)
+    assert spread.row("ILR (outer)").fraction_found == pytest.approx(f2)
 
 
 def _galpy_cases():
@@ -158,9 +173,9 @@ def test_resonance_radii_agree_with_galpy_lindbladR(case):
     scale = kpc_per_arcsec(d)
 
     def v_of(r_arcsec):
-        return np.array([vcirc(pot, x * scale * u.kpc, ro=8.0, vo=220.0,
-                               quantity=True).to_value(u.km / u.s)
-                         for x in np.atleast_1d(r_arcsec)])
+        r_kpc = np.atleast_1d(r_arcsec) * scale
+        return vcirc(pot, r_kpc * u.kpc, ro=8.0, vo=220.0,
+                     quantity=True).to_value(u.km / u.s)
 
     curve = FunctionCurve(v_of, (0.01 / scale, 40.0 / scale))
     omega_p = 40.0 * KMS_KPC
@@ -253,6 +268,9 @@ def test_pattern_speed_without_unit_or_distance_is_refused():
     curve = FunctionCurve(lambda r: np.full_like(r, 200.0), (1.0, 60.0))
     with pytest.raises(RotationCurveError):
         find_resonances(curve, 4.0 * KMS_ARCSEC, ms=(0,))
+    with pytest.raises(RotationCurveError, match="no uncertainty model"):
+        resonance_budget(curve, 4.0 * KMS_ARCSEC, rng=np.random.default_rng(),
+                         n_draws=5)
 
 
 def test_any_multiplicity_the_user_asks_for():
@@ -297,3 +315,26 @@ def test_corotation_of_the_synthetic_barred_galaxy_from_its_velocity_field():
     assert cr.status == STATUS_FOUND
     assert cr.radius_arcsec == pytest.approx(true_cr, rel=0.03)
     assert cr.p16_arcsec < true_cr < cr.p84_arcsec
+
+
+from hypothesis import given, settings, strategies as st  # noqa: E402
+
+
+@settings(max_examples=25, deadline=None)
+@given(beta=st.floats(-0.5, 0.8), r_cr=st.floats(5.0, 200.0))
+def test_power_law_ratios_hold_or_the_resonance_is_reported_outside(beta, r_cr):
+    # R_res/R_CR = (1 -+ sqrt(2(1+beta))/m)^(1/(1-beta)) (DOMAIN.md §4,
+    # derived); a radius outside the data range must be reported as such
+    curve = _power_law(beta, r_range=(1.0, 300.0))
+    omega_p = float(curve.v(np.array([r_cr]))[0]) / r_cr
+    res = _by_name(find_resonances(curve, omega_p * KMS_ARCSEC, n_grid=400))
+    assert res["CR"].radius_arcsec == pytest.approx(r_cr, rel=1e-7)
+    k = math.sqrt(2 * (1 + beta))
+    for name, m, sign in (("ILR (outer)", 2, -1), ("OLR", 2, 1),
+                          ("UHR inner (4:1)", 4, -1), ("UHR outer (4:1)", 4, 1)):
+        expect = r_cr * (1 + sign * k / m) ** (1 / (1 - beta))
+        if 1.0 * 1.001 < expect < 300.0 / 1.001:
+            assert res[name].status == STATUS_FOUND, name
+            assert res[name].radius_arcsec == pytest.approx(expect, rel=1e-6)
+        elif not 1.0 / 1.001 < expect < 300.0 * 1.001:
+            assert res[name].status == STATUS_OUTSIDE, name

@@ -88,6 +88,12 @@ def test_ecsv_with_kpc_radii_is_converted_with_the_distance(tmp_path):
     np.testing.assert_allclose(curve.v_kms, [80, 140, 190, 200])
     with pytest.raises(RotationCurveError, match="needs the distance"):
         load_rotation_curve(path)
+    # write -> read round trip through the curve's own table
+    again = tmp_path / "again.ecsv"
+    curve.to_table().write(again, format="ascii.ecsv")
+    back = load_rotation_curve(again, distance_mpc=18.0)
+    np.testing.assert_allclose(back.r_arcsec, curve.r_arcsec, rtol=1e-12)
+    np.testing.assert_allclose(back.v_err_kms, curve.v_err_kms)
 
 
 def test_csv_and_whitespace_tables_with_unit_suffixes_or_arguments(tmp_path):
@@ -145,6 +151,10 @@ def test_tilted_rings_recover_a_thin_disk_within_errors():
     assert c.source == "tilted rings"
     table = result.rings.to_table()
     assert table["vrot"].unit == u.km / u.s and len(table) == len(c)
+    out = c.to_table()
+    assert out["r_kpc"].unit == u.kpc
+    np.testing.assert_allclose(out["r_kpc"].value,
+                               c.r_arcsec * kpc_per_arcsec(18.0))
 
 
 def test_tilted_rings_with_free_geometry_recover_pa_and_inclination():
