@@ -60,6 +60,8 @@ class Controller(QObject):
         New :class:`~gyrometer.core.results.UncertaintyBudget` or None.
     dynamics_changed(object)
         New rotation-curve / resonance result or None.
+    checks_changed(object)
+        The pipeline result whose convergence and PA checks are shown, or None.
     estimate_ready(str, object)
         Name and result of a geometry estimator.
     error_raised(str, str)
@@ -76,6 +78,7 @@ class Controller(QObject):
     measurement_changed = Signal(object)
     budget_changed = Signal(object)
     dynamics_changed = Signal(object)
+    checks_changed = Signal(object)
     estimate_ready = Signal(str, object)
     session_changed = Signal(object)
     error_raised = Signal(str, str)
@@ -130,6 +133,14 @@ class Controller(QObject):
                        "this with the file that caused it.")
         self.error_raised.emit(title, message)
 
+    def _start(self, title: str, work, done) -> bool:
+        """Start background work, or say why not (one task at a time)."""
+        if self.tasks.start(title, work, done):
+            return True
+        self.status.emit(f"{self.tasks.title} is still running: wait for it or "
+                         "cancel it (Esc)")
+        return False
+
     def _task_failed(self, title: str, exc: object) -> None:
         self._report_error(title, exc)  # type: ignore[arg-type]
 
@@ -182,7 +193,7 @@ class Controller(QObject):
             session, (geometry, slits, notes) = prepared
             self._install(session, data, data, geometry, slits, notes)
 
-        return self.tasks.start(f"Open {path.name}", work, done)
+        return self._start(f"Open {path.name}", work, done)
 
     def compute_moments(self, moment_settings) -> bool:
         """Reduce the open cube to maps with ``moment_settings``
@@ -207,7 +218,7 @@ class Controller(QObject):
             self.pending_session = None
             self._install(session, cube, maps, geometry, slits, notes)
 
-        return self.tasks.start("Moment maps", work, done)
+        return self._start("Moment maps", work, done)
 
     def _remember(self, path: Path) -> None:
         self.recent_changed.emit(self.settings.add_recent(path))
@@ -241,6 +252,7 @@ class Controller(QObject):
         self.selection_changed.emit(-1)
         self.budget_changed.emit(None)
         self.dynamics_changed.emit(None)
+        self.checks_changed.emit(None)
         self._remeasure()
         self.status.emit(f"{maps.name or 'maps'}: {maps.shape[1]}x{maps.shape[0]} "
                          f"pixels, tracer {maps.tracer}")
@@ -554,7 +566,7 @@ class Controller(QObject):
             else:
                 self.status.emit("Budget finished for an older state; run it again")
 
-        return self.tasks.start("Uncertainty budget", work, done)
+        return self._start("Uncertainty budget", work, done)
 
     # ------------------------------------------------------------------
     # geometry estimators (background)
@@ -600,7 +612,7 @@ class Controller(QObject):
             if self.maps is maps:
                 self.set_geometry(new_geometry, f"apply {key} estimate")
 
-        return self.tasks.start("Geometry estimate", work, done)
+        return self._start("Geometry estimate", work, done)
 
     # ------------------------------------------------------------------
     # sessions and the one pipeline
@@ -686,7 +698,7 @@ class Controller(QObject):
             self._remember(path)
             self._install(session, data, maps, geometry, slits, notes)
 
-        return self.tasks.start(f"Open {path.name}", work, done)
+        return self._start(f"Open {path.name}", work, done)
 
     def save_session(self, path: str | Path, overwrite: bool = False) -> bool:
         """Write the current session file (TOML); True on success."""
@@ -702,14 +714,33 @@ class Controller(QObject):
         return True
 
     def open_sample(self) -> bool:
-        """Open the synthetic sample galaxy LBDP-037 (stellar maps)."""
+        """Open the synthetic sample galaxy LBDP-037 (stellar maps).
+
+        Without a ``sample_cubes`` folder (an installed package), the
+        samples are first written by :func:`gyrometer.core.samples.write_samples`
+        into the per-user data folder, in the background.
+        """
         path = sample_path()
-        if path is None:
-            self._report_error("Open sample", GyrometerError(
-                "the sample files are not installed",
-                hint="run 'python -m gyrometer.core.samples sample_cubes'"))
-            return False
-        return self.open_path(path)
+        if path is not None:
+            return self.open_path(path)
+        from PySide6.QtCore import QStandardPaths
+
+        from gyrometer.core.samples import write_samples
+        folder = Path(QStandardPaths.writableLocation(
+            QStandardPaths.StandardLocation.GenericDataLocation) or Path.home()) \
+            / "gyrometer" / "sample_cubes"
+
+        def work(progress, cancel):
+            target = folder / "LBDP-037_stellar_maps.fits"
+            if not target.is_file():
+                write_samples(folder, overwrite=True, progress=progress)
+            return target
+
+        return self._start("Write sample files", work, self._open_later)
+
+    def _open_later(self, path) -> None:
+        # the runner is still finishing the previous task: open on the next turn
+        QTimer.singleShot(0, lambda: self.open_path(path))
 
     def run_full(self) -> bool:
         """Run :func:`gyrometer.core.pipeline.run_session` on the current
@@ -736,10 +767,11 @@ class Controller(QObject):
                 self._set_measurement(result.measurement)
             self.budget_changed.emit(self.budget)
             self.dynamics_changed.emit(self.dynamics)
+            self.checks_changed.emit(result)
             for note in result.warnings[:3]:
                 self.status.emit(note)
 
-        return self.tasks.start("Full measurement", work, done)
+        return self._start("Full measurement", work, done)
 
     def export_results(self, folder: str | Path, overwrite: bool = False) -> bool:
         """Run the pipeline on the current session and write everything the
@@ -770,7 +802,7 @@ class Controller(QObject):
             self.settings.set_last_folder(folder)
             self.status.emit(f"Wrote {len(paths)} files to {folder}")
 
-        return self.tasks.start("Export results", work, done)
+        return self._start("Export results", work, done)
 
 def sample_path() -> Path | None:
     """The sample map set LBDP-037 shipped in ``sample_cubes/``, if present."""

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import shiboken6
+
 from PySide6.QtCore import QSize, Qt
 from PySide6.QtGui import QAction, QKeySequence
 from PySide6.QtWidgets import (QDockWidget, QFileDialog, QLabel, QMainWindow,
@@ -58,6 +60,9 @@ class MainWindow(QMainWindow):
         self.tabs = QTabWidget()
         self.tabs.addTab(self.result_view, icon("fit"), "Pattern speed")
         self.tabs.addTab(self.dynamics_view, icon("resonance"), "Rotation && resonances")
+        from .checksview import QtChecksView
+        self.checks_view = QtChecksView(controller)
+        self.tabs.addTab(self.checks_view, icon("budget"), "Checks")
         splitter = QSplitter(Qt.Orientation.Horizontal)
         splitter.addWidget(self.map_view)
         splitter.addWidget(self.tabs)
@@ -257,8 +262,11 @@ class MainWindow(QMainWindow):
     def _update_title(self, *_args) -> None:
         name = self.controller.galaxy_name()
         title = f"Gyrometer \u2013 {name}[*]" if name else "Gyrometer[*]"
+        stack = self.controller.undo_stack
+        if not (shiboken6.isValid(self) and shiboken6.isValid(stack)):
+            return  # shutting down
         self.setWindowTitle(title)
-        self.setWindowModified(not self.controller.undo_stack.isClean())
+        self.setWindowModified(not stack.isClean())
 
     def _status(self, text: str) -> None:
         self.statusBar().showMessage(text, 8000)

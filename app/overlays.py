@@ -111,8 +111,9 @@ class GeometryOverlay:
                                        brush=pg.mkBrush(PALETTE["nodes"]))
         self.inc_handle = pg.TargetItem(size=10, symbol="s", movable=True,
                                         pen=_pen(PALETTE["ellipse"], 2.0))
-        self.receding = pg.TextItem("receding", color=PALETTE["nodes"], anchor=(0, 1),
-                                    fill=pg.mkBrush(20, 20, 20, 170))
+        self.receding = pg.TextItem("receding", color=(245, 245, 245), anchor=(0, 1),
+                                    fill=pg.mkBrush(20, 20, 20, 200),
+                                    border=pg.mkPen(PALETTE["nodes"]))
         self.centre.setToolTip("Disk centre: drag to move it")
         self.pa_handle.setToolTip("Receding end of the line of nodes: drag to "
                                   "turn the position angle (turns every slit)")

@@ -91,6 +91,10 @@ def main(argv: list[str] | None = None) -> int:
         _wait(app, c)
         _save(window, out / "rotation-and-resonances.png")
 
+        window.tabs.setCurrentIndex(2)
+        _wait(app, c)
+        _save(window.tabs, out / "checks.png")
+
         window.map_view.set_kind("velocity")
         window.tabs.setCurrentIndex(0)
         _wait(app, c)

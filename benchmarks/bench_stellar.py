@@ -25,6 +25,7 @@ Goal: (a) and (b) under 10 s on 2 cores. Not a test: no pass/fail. Options:
 from __future__ import annotations
 
 import argparse
+import os
 import time
 from pathlib import Path
 
@@ -156,6 +157,7 @@ def main() -> None:
         print(f"built {path.name} in {time.perf_counter() - t0:.1f} s")
     print(f"cube {NX} x {NY} x {N_CHAN} float32, file {path.stat().st_size / 2**20:.0f}"
           f" MiB{' with VARIANCE' if with_var else ''}")
+    print(f"load average (1 min) {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")
     t0 = time.perf_counter()
     cube = load_cube(path)
     print(f"load_cube (header, checks, SHA-256): {time.perf_counter() - t0:.2f} s")

@@ -63,7 +63,10 @@ class BudgetSettings:
         1-sigma uncertainties; None takes the geometry's ``*_err`` fields.
         The centre is drawn with this sigma along east and north each.
     workers : int
-        Processes for the geometry draws (1 = in process).
+        Processes for the geometry evaluations (1 = in process).
+    exact : bool
+        Recompute the exact slit weights for every geometry draw instead
+        of interpolating integrals computed exactly on a grid (slower).
     chunk : int
         Draws evaluated together (memory ~ chunk x slit pixels).
     """
@@ -80,6 +83,7 @@ class BudgetSettings:
     inc_err_deg: float | None = None
     workers: int = 1
     chunk: int = 100
+    exact: bool = False
 
     def __post_init__(self) -> None:
         if int(self.n_draws) < 10:
@@ -144,13 +148,20 @@ def _prepare(maps: MapSet, geometry: DiskGeometry, slits, measurement: TWMeasure
 
 def _geometry_chunk(prep: _Prep, dpa_deg, d_east, d_north, seed_seq,
                     noise: bool, bootstrap: bool) -> np.ndarray:
-    """TW slopes (km/s/arcsec) for a chunk of redrawn geometries.
+    """TW slopes (km/s/arcsec) for a chunk of redrawn geometries."""
+    rng = np.random.Generator(np.random.PCG64(seed_seq))
+    xm, vm = _geometry_integrals(prep, dpa_deg, d_east, d_north, rng if noise else None)
+    return _fit_draws(xm, vm, prep, rng if bootstrap else None)
+
+
+def _geometry_integrals(prep: _Prep, dpa_deg, d_east, d_north, rng=None):
+    """Slit integrals ``<X>, <V>`` of shape (draws, slits) for redrawn geometries.
 
     The exact slit weights of every (draw, slit) are recomputed at once by
     :func:`gyrometer.core.slits._strip_pixels`; bins and mirrored masking as
-    in :mod:`gyrometer.core.tw`.
+    in :mod:`gyrometer.core.tw`. With ``rng``, intensity and velocity are
+    perturbed by their errors, independently per (slit, pixel) entry.
     """
-    rng = np.random.Generator(np.random.PCG64(seed_seq))
     nd = dpa_deg.size
     ns = prep.bounds.shape[0]
     fr = prep.frame
@@ -174,7 +185,7 @@ def _geometry_chunk(prep: _Prep, dpa_deg, d_east, d_north, seed_seq,
     valid = inside & prep.valid[f]
     s = prep.s[f]
     v = prep.v[f]
-    if noise:
+    if rng is not None:
         s = s + prep.es[f] * rng.standard_normal(s.size)
         v = v + prep.ev[f] * rng.standard_normal(v.size)
     wv = w * valid
@@ -195,7 +206,7 @@ def _geometry_chunk(prep: _Prep, dpa_deg, d_east, d_north, seed_seq,
     with np.errstate(divide="ignore", invalid="ignore"):
         xm = np.where(bb > 0, aa / bb, np.nan)
         vm = np.where(bb > 0, cc / bb, np.nan)
-    return _fit_draws(xm, vm, prep, rng if bootstrap else None)
+    return xm, vm
 
 
 def _fit_draws(xm, vm, prep: _Prep, rng) -> np.ndarray:
@@ -216,7 +227,13 @@ def _fit_draws(xm, vm, prep: _Prep, rng) -> np.ndarray:
 
 def _noise_chunk(prep_noise, seed_seq, nd: int, prep: _Prep) -> np.ndarray:
     """Slopes for ``nd`` noise realisations at the nominal geometry."""
-    m_slit, pix, inv, s_u, v_u, es_u, ev_u, x_e = prep_noise
+    xm, vm = _noise_integrals(prep_noise, seed_seq, nd)
+    return _fit_draws(xm, vm, prep, None)
+
+
+def _noise_integrals(prep_noise, seed_seq, nd: int):
+    """Slit integrals of ``nd`` noise realisations at the nominal geometry."""
+    m_slit, pix, inv, s_u, v_u, es_u, ev_u, x_e = prep_noise[:8]
     rng = np.random.Generator(np.random.PCG64(seed_seq))
     s = s_u + es_u * rng.standard_normal((nd, pix.size))
     v = v_u + ev_u * rng.standard_normal((nd, pix.size))
@@ -227,10 +244,70 @@ def _noise_chunk(prep_noise, seed_seq, nd: int, prep: _Prep) -> np.ndarray:
     with np.errstate(divide="ignore", invalid="ignore"):
         xm = np.where(bb > 0, aa / bb, np.nan)
         vm = np.where(bb > 0, cc / bb, np.nan)
-    return _fit_draws(xm, vm, prep, None)
+    return xm, vm
+
+
+#: The _Prep of a worker process, sent once by the pool initializer (worker
+#: processes only; the parent never sets it).
+_WORKER_PREP: _Prep | None = None
+
+
+def _init_worker(prep: _Prep) -> None:
+    global _WORKER_PREP
+    _WORKER_PREP = prep
+
+
+def _worker_integrals(dpa, de, dn):
+    return _geometry_integrals(_WORKER_PREP, dpa, de, dn)
+
+
+def _worker_chunk(dpa, de, dn, seed_seq, noise, bootstrap):
+    return _geometry_chunk(_WORKER_PREP, dpa, de, dn, seed_seq, noise, bootstrap)
+
+
+def _grid_integrals(prep: _Prep, axes, n_pts, draws, pool, chunk: int):
+    """Integrals at ``draws`` interpolated from a grid of exact evaluations.
+
+    ``axes`` names the geometry parameters varied (subset of ``dpa, de,
+    dn``); the grid spans the range of the draws with ``n_pts`` nodes per
+    axis; per-slit ``<X>`` and ``<V>`` are interpolated with cubic splines
+    (:class:`scipy.interpolate.RegularGridInterpolator`, ``method="cubic"``,
+    or :class:`~scipy.interpolate.CubicSpline` in one dimension). The exact
+    weights are continuous in the geometry, so the integrals are smooth.
+    """
+    from scipy.interpolate import CubicSpline, RegularGridInterpolator
+    nodes = []
+    for name, n in zip(axes, n_pts):
+        lo, hi = float(np.min(draws[name])), float(np.max(draws[name]))
+        if hi - lo < 1e-12:
+            lo, hi = lo - 1e-6, hi + 1e-6
+        nodes.append(np.linspace(lo, hi, n))
+    mesh = np.meshgrid(*nodes, indexing="ij")
+    flat = {name: m.ravel() for name, m in zip(axes, mesh)}
+    zeros = np.zeros(mesh[0].size)
+    dpa = flat.get("dpa", zeros)
+    de = flat.get("de", zeros)
+    dn = flat.get("dn", zeros)
+    pieces = [(dpa[i:i + m], de[i:i + m], dn[i:i + m]) for i, m in _chunks(dpa.size, chunk)]
+    if pool is None:
+        out = [_geometry_integrals(prep, *p) for p in pieces]
+    else:
+        out = [f.result() for f in [pool.submit(_worker_integrals, *p) for p in pieces]]
+    xm = np.concatenate([o[0] for o in out])
+    vm = np.concatenate([o[1] for o in out])
+    ns = xm.shape[1]
+    shape = tuple(n_pts)
+    values = np.concatenate([xm, vm], axis=1).reshape(shape + (2 * ns,))
+    points = np.column_stack([draws[name] for name in axes])
+    if len(axes) == 1:
+        res = CubicSpline(nodes[0], values, axis=0)(points[:, 0])
+    else:
+        res = RegularGridInterpolator(nodes, values, method="cubic")(points)
+    return res[:, :ns], res[:, ns:]
 
 
 def _prepare_noise(maps: MapSet, geometry: DiskGeometry, weights, symmetric: bool):
+    """Per-pixel noise set-up at the nominal geometry (used rows only)."""
     layout = _layout(weights)
     terms, valid = _pixel_terms_maps(layout, maps, geometry.vsys_kms)
     bad = _row_bad(layout, valid)
@@ -239,13 +316,46 @@ def _prepare_noise(maps: MapSet, geometry: DiskGeometry, weights, symmetric: boo
     entries = np.flatnonzero(keep)
     flat = layout.flat[entries]
     pix, inv = np.unique(flat, return_inverse=True)
-    m_slit = sp.csr_matrix((layout.weight[entries],
-                            (layout.row_slit[layout.row[entries]], np.arange(entries.size))),
+    slit = layout.row_slit[layout.row[entries]]
+    w = layout.weight[entries]
+    m_slit = sp.csr_matrix((w, (slit, np.arange(entries.size))),
                            shape=(layout.n_slits, entries.size))
     get = lambda a: np.asarray(a, float).ravel()[pix]      # noqa: E731
-    return (m_slit, pix, inv, get(maps.intensity),
-            get(maps.velocity_kms) - geometry.vsys_kms, get(maps.intensity_err),
-            get(maps.velocity_err_kms), layout.x_arcsec[entries])
+    s_u, v_u = get(maps.intensity), get(maps.velocity_kms) - geometry.vsys_kms
+    es_u, ev_u = get(maps.intensity_err), get(maps.velocity_err_kms)
+    x_e = layout.x_arcsec[entries]
+    # Sums B = sum w S, A = sum w S X, C = sum w S V are Gaussian in the
+    # pixel noise to first order; their covariance over all slits follows
+    # from G Sigma G^T with G the coefficients of each pixel's noise.
+    ns = layout.n_slits
+    cols = np.arange(entries.size)
+    rows = np.concatenate([slit, ns + slit, 2 * ns + slit])
+    g_s = sp.csr_matrix((np.concatenate([w, w * x_e, w * v_u[inv]]) * np.tile(es_u[inv], 3),
+                         (rows, np.tile(inv, 3))), shape=(3 * ns, pix.size))
+    g_v = sp.csr_matrix((w * s_u[inv] * ev_u[inv], (2 * ns + slit, inv)),
+                        shape=(3 * ns, pix.size))
+    cov = (g_s @ g_s.T + g_v @ g_v.T).toarray()
+    # second-order term sum w dS dV: zero mean, variance sum w^2 sS^2 sV^2
+    cov[2 * ns + np.arange(ns), 2 * ns + np.arange(ns)] += np.bincount(
+        slit, weights=(w * es_u[inv] * ev_u[inv]) ** 2, minlength=ns)
+    base = np.concatenate([m_slit @ s_u[inv], m_slit @ (s_u[inv] * x_e),
+                           m_slit @ (s_u[inv] * v_u[inv])])
+    del cols
+    vals, vecs = np.linalg.eigh(cov)
+    root = vecs * np.sqrt(np.clip(vals, 0.0, None))       # cov = root root^T
+    return (m_slit, pix, inv, s_u, v_u, es_u, ev_u, x_e, base, root)
+
+
+def _noise_sums(prep_noise, seed_seq, nd: int):
+    """Slit integrals of ``nd`` noise realisations, drawn from the Gaussian
+    distribution of the slit sums (covariance of :func:`_prepare_noise`)."""
+    base, root = prep_noise[8], prep_noise[9]
+    rng = np.random.Generator(np.random.PCG64(seed_seq))
+    draws = base + rng.standard_normal((nd, base.size)) @ root.T
+    ns = base.size // 3
+    bb, aa, cc = draws[:, :ns], draws[:, ns:2 * ns], draws[:, 2 * ns:]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return (np.where(bb > 0, aa / bb, np.nan), np.where(bb > 0, cc / bb, np.nan))
 
 
 def _summarise(name: str, omega) -> BudgetTerm:
@@ -294,6 +404,21 @@ def run_budget(maps: MapSet, geometry: DiskGeometry, slits: SlitSet | Sequence[S
     UncertaintyBudget
         One :class:`BudgetTerm` per enabled term with a non-zero sigma, then
         ``"all combined"``; Omega_p in km/s/arcsec.
+
+    Notes
+    -----
+    Noise draws: by default the slit sums ``sum w S``, ``sum w S X`` and
+    ``sum w S (V - Vsys)`` of all slits are drawn from their joint Gaussian
+    distribution (exact for the linear terms, including pixels shared by
+    overlapping slits; the small ``dS dV`` term as a Gaussian of the right
+    variance); with ``settings.exact`` every pixel is perturbed.
+    Geometry draws: with ``settings.exact`` every draw recomputes the exact
+    weights of every slit; otherwise (default) the integrals are computed
+    exactly on a grid spanning the draws (21 PA values; 7 x 7 centre
+    shifts; 9 x 4 x 4 for the combined term) and interpolated with cubic
+    splines, which the tests check against the exact draws. In the combined
+    term the noise enters as the per-slit change of ``<X>``, ``<V>`` of a
+    noise realisation at the nominal geometry (first order).
     """
     items = tuple(slits)
     if symmetric is None:
@@ -319,85 +444,113 @@ def run_budget(maps: MapSet, geometry: DiskGeometry, slits: SlitSet | Sequence[S
         "inclination": settings.inclination and i_sig > 0,
     }
     seeds = dict(zip(TERM_NAMES, np.random.SeedSequence(settings.seed).spawn(len(TERM_NAMES))))
-    chunks = _chunks(n, max(1, int(settings.chunk)))
-    slope0 = measurement.fit.slope
+    chunk = max(1, int(settings.chunk))
+    chunks = _chunks(n, chunk)
+    ig = measurement.integrals
+    x_nom = np.broadcast_to(ig.x_mean_arcsec, (n, ig.n_slits))
+    v_nom = np.broadcast_to(ig.v_mean_kms, (n, ig.n_slits))
     results: dict[str, np.ndarray] = {}
     total = sum(want.values()) + 1
-    done = 0
+    step = [0]
+
+    def tick(stage):
+        step[0] += 1
+        report(progress, step[0], total, f"uncertainty budget: {stage}")
+        check_cancel(cancel, "uncertainty budget")
+
+    def gen(name, k=0):
+        return np.random.Generator(np.random.PCG64(seeds[name].spawn(k + 1)[k]))
 
     def inc_draws(rng):
-        i = rng.normal(geometry.inc_deg, i_sig, n) if i_sig > 0 else np.full(n, geometry.inc_deg)
+        i = rng.normal(geometry.inc_deg, i_sig, n)
         return np.sin(np.radians(np.clip(i, 0.5, 89.5)))
 
     pool = None
     if settings.workers > 1:
-        pool = ProcessPoolExecutor(max_workers=int(settings.workers))
+        pool = ProcessPoolExecutor(max_workers=int(settings.workers),
+                                   initializer=_init_worker, initargs=(prep,))
     try:
-        def geometry_term(name, dpa, de, dn, noise, boot):
-            seqs = seeds[name].spawn(len(chunks))
+        def exact_term(name, dpa, de, dn, noise, boot):
+            seqs = seeds[name].spawn(len(chunks) + 2)[2:]
             args = [(prep, dpa[i:i + m], de[i:i + m], dn[i:i + m], q, noise, boot)
                     for (i, m), q in zip(chunks, seqs)]
-            out = []
             if pool is None:
+                out = []
                 for a in args:
                     check_cancel(cancel, "uncertainty budget")
                     out.append(_geometry_chunk(*a))
             else:
-                futures = [pool.submit(_geometry_chunk, *a) for a in args]
-                for fut in futures:
-                    check_cancel(cancel, "uncertainty budget")
-                    out.append(fut.result())
+                out = [f.result() for f in [pool.submit(_worker_chunk, *a[1:])
+                                            for a in args]]
             return np.concatenate(out)
 
-        zeros = np.zeros(n)
+        def grid_xv(draws, sizes):
+            axes = tuple(k for k in ("dpa", "de", "dn") if k in sizes)
+            return _grid_integrals(prep, axes, [sizes[k] for k in axes], draws, pool, chunk)
+
+        pn = None
         if want["noise"]:
-            check_cancel(cancel, "uncertainty budget")
             pn = _prepare_noise(maps, geometry, weights, symmetric)
             seqs = seeds["noise"].spawn(len(chunks))
-            results["noise"] = np.concatenate(
-                [_noise_chunk(pn, q, m, prep) for (_, m), q in zip(chunks, seqs)]) / sin_i
-            done += 1
-            report(progress, done, total, "uncertainty budget: noise")
+            noise_fn = _noise_integrals if settings.exact else _noise_sums
+            out = [noise_fn(pn, q, m) for (_, m), q in zip(chunks, seqs)]
+            xn = np.concatenate([o[0] for o in out])
+            vn = np.concatenate([o[1] for o in out])
+            results["noise"] = _fit_draws(xn, vn, prep, None) / sin_i
+            tick("noise")
         if want["slit bootstrap"]:
-            rng = np.random.Generator(np.random.PCG64(seeds["slit bootstrap"]))
-            ig = measurement.integrals
-            xm = np.broadcast_to(ig.x_mean_arcsec, (n, ig.n_slits))
-            vm = np.broadcast_to(ig.v_mean_kms, (n, ig.n_slits))
-            results["slit bootstrap"] = _fit_draws(xm, vm, prep, rng) / sin_i
-            done += 1
-            report(progress, done, total, "uncertainty budget: slit bootstrap")
+            results["slit bootstrap"] = _fit_draws(x_nom, v_nom, prep,
+                                                   gen("slit bootstrap")) / sin_i
+            tick("slit bootstrap")
+        zeros = np.zeros(n)
         if want["position angle"]:
-            rng = np.random.Generator(np.random.PCG64(seeds["position angle"].spawn(1)[0]))
-            dpa = rng.normal(0.0, pa_sig, n)
-            results["position angle"] = geometry_term("position angle", dpa, zeros, zeros,
-                                                      False, False) / sin_i
-            done += 1
-            report(progress, done, total, "uncertainty budget: position angle")
+            dpa = gen("position angle").normal(0.0, pa_sig, n)
+            if settings.exact:
+                slope = exact_term("position angle", dpa, zeros, zeros, False, False)
+            else:
+                xm, vm = grid_xv({"dpa": dpa}, {"dpa": 21})
+                slope = _fit_draws(xm, vm, prep, None)
+            results["position angle"] = slope / sin_i
+            tick("position angle")
         if want["centre"]:
-            rng = np.random.Generator(np.random.PCG64(seeds["centre"].spawn(1)[0]))
-            de, dn = rng.normal(0.0, c_sig, (2, n))
-            results["centre"] = geometry_term("centre", zeros, de, dn, False, False) / sin_i
-            done += 1
-            report(progress, done, total, "uncertainty budget: centre")
+            de, dn = gen("centre").normal(0.0, c_sig, (2, n))
+            if settings.exact:
+                slope = exact_term("centre", zeros, de, dn, False, False)
+            else:
+                xm, vm = grid_xv({"de": de, "dn": dn}, {"de": 7, "dn": 7})
+                slope = _fit_draws(xm, vm, prep, None)
+            results["centre"] = slope / sin_i
+            tick("centre")
         if want["inclination"]:
-            rng = np.random.Generator(np.random.PCG64(seeds["inclination"]))
-            results["inclination"] = slope0 / inc_draws(rng)
-            done += 1
-            report(progress, done, total, "uncertainty budget: inclination")
-        rng = np.random.Generator(np.random.PCG64(seeds["all combined"].spawn(1)[0]))
+            results["inclination"] = measurement.fit.slope / inc_draws(gen("inclination"))
+            tick("inclination")
+        rng = gen("all combined")
         dpa = rng.normal(0.0, pa_sig, n) if want["position angle"] else zeros
         de, dn = (rng.normal(0.0, c_sig, (2, n)) if want["centre"] else (zeros, zeros))
         s_i = inc_draws(rng) if want["inclination"] else np.full(n, sin_i)
-        if want["position angle"] or want["centre"] or want["noise"]:
-            comb = geometry_term("all combined", dpa, de, dn, want["noise"],
-                                 want["slit bootstrap"])
+        boot_rng = gen("all combined", 1) if want["slit bootstrap"] else None
+        geo_on = want["position angle"] or want["centre"]
+        if settings.exact and (geo_on or want["noise"]):
+            comb = exact_term("all combined", dpa, de, dn, want["noise"],
+                              want["slit bootstrap"])
         else:
-            ig = measurement.integrals
-            comb = _fit_draws(np.broadcast_to(ig.x_mean_arcsec, (n, ig.n_slits)),
-                              np.broadcast_to(ig.v_mean_kms, (n, ig.n_slits)), prep,
-                              rng if want["slit bootstrap"] else None)
+            xm, vm = np.array(x_nom), np.array(v_nom)
+            if geo_on:
+                draws, sizes = {}, {}
+                if want["position angle"]:
+                    draws["dpa"], sizes["dpa"] = dpa, 9
+                if want["centre"]:
+                    draws["de"], sizes["de"] = de, 4
+                    draws["dn"], sizes["dn"] = dn, 4
+                xm, vm = grid_xv(draws, sizes)
+            if want["noise"]:
+                seqs = seeds["all combined"].spawn(len(chunks) + 2)[2:]
+                out = [_noise_sums(pn, q, m) for (_, m), q in zip(chunks, seqs)]
+                xm = xm + np.concatenate([o[0] for o in out]) - x_nom
+                vm = vm + np.concatenate([o[1] for o in out]) - v_nom
+            comb = _fit_draws(xm, vm, prep, boot_rng)
         results["all combined"] = comb / s_i
-        report(progress, total, total, "uncertainty budget: all combined")
+        tick("all combined")
     finally:
         if pool is not None:
             pool.shutdown()

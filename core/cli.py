@@ -267,7 +267,8 @@ def _run_one(path: Path, args, bar: ProgressBar, cancel):
     session = _apply_overrides(load_any(path), args)
     try:
         result = run_session(session, progress=bar, cancel=cancel)
-        paths = export_result(result, overwrite=args.force, cancel=cancel)
+        paths = export_result(result, overwrite=args.force, progress=bar,
+                              cancel=cancel)
     finally:
         bar.close()
     return result, paths
@@ -275,7 +276,7 @@ def _run_one(path: Path, args, bar: ProgressBar, cancel):
 
 # -- subcommands -------------------------------------------------------------------
 def _cmd_measure(args, bar, cancel) -> int:
-    from .tables import merge_results, write_csv, write_ecsv, write_json, write_latex
+    from .tables import merge_results
 
     status = 0
     ecsv_files = []
@@ -410,6 +411,18 @@ def _cmd_regions(args, bar, cancel) -> int:
     return 0
 
 
+def _recipe_as_session(recipe: Path) -> Path:
+    """The recipe as a session file in a fresh temporary folder (the app
+    opens session files; the recipe itself is left untouched)."""
+    import tempfile
+
+    from .recipe import load_recipe
+    from .session import save_session
+
+    folder = Path(tempfile.mkdtemp(prefix="gyrometer-demo-"))
+    return save_session(load_recipe(recipe), folder / recipe.name)
+
+
 def _display_available() -> bool:
     return bool(os.environ.get("DISPLAY") or os.environ.get("WAYLAND_DISPLAY"))
 
@@ -429,7 +442,7 @@ def _cmd_demo(args, bar, cancel) -> int:
                 _say(args, f"the desktop app cannot start ({exc}): running "
                            "the same measurement headless")
             else:
-                return int(app_main([str(recipe)]) or 0)
+                return int(app_main([str(_recipe_as_session(recipe))]) or 0)
         else:
             _say(args, "no display found: running the same measurement "
                        "headless")

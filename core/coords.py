@@ -77,6 +77,13 @@ def pixel_scale_arcsec(wcs: WCS) -> float:
         raise HeaderError(f"cannot derive a pixel scale from the WCS ({exc})",
                           keyword="CDELT/CD/PC") from exc
     scale = float(np.sqrt(abs(scales[0] * scales[1]))) * 3600.0
+    try:
+        det = float(np.linalg.det(wcs.celestial.pixel_scale_matrix))
+    except Exception:  # noqa: BLE001 - any failure means no usable matrix
+        det = float("nan")
+    if not np.isfinite(det) or abs(det) * 3600.0 ** 2 <= 1e-10 * scale ** 2:
+        raise HeaderError("the WCS matrix is singular: pixels have no area "
+                          "on the sky", keyword="CDELT/CD/PC", value=det)
     if not np.isfinite(scale) or scale <= 0:
         raise HeaderError("the WCS has a zero or invalid pixel scale",
                           keyword="CDELT/CD/PC", value=scale)

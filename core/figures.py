@@ -86,7 +86,7 @@ def _finish(fig):
     with _style():
         fig.draw_without_rendering()
     fig.set_layout_engine("none")
-    return _finish(fig)
+    return fig
 
 
 def _omega_unit(distance_mpc: float | None) -> tuple[float, str]:

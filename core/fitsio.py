@@ -201,8 +201,53 @@ def _make_wcs(header: fits.Header, path: Path, hdu: str) -> WCS:
             warnings.simplefilter("ignore", FITSFixedWarning)
             return WCS(header)
     except Exception as exc:
-        raise HeaderError(f"invalid WCS ({exc})", path=str(path),
+        zero = [f"CDELT{a}" for a in range(1, int(header.get("NAXIS", 0)) + 1)
+                if _is_zero(header.get(f"CDELT{a}"))]
+        if zero:
+            spectral = [k for k in zero if str(header.get(
+                "CTYPE" + k[5:], "")).strip().upper()[:4] in _SPECTRAL_TYPES]
+            cls = SpectralAxisError if spectral else HeaderError
+            what = ("zero-width channels" if spectral else
+                    "zero-size pixels")
+            raise cls(f"{what}: {', '.join(k + ' = 0' for k in zero)}; the "
+                      "WCS matrix is singular", path=str(path), hdu=hdu,
+                      keyword=zero[0],
+                      hint="set the channel width / pixel size") from exc
+        text = str(exc).strip().splitlines()
+        detail = text[-1] if text else type(exc).__name__
+        if "singular" in str(exc).lower():
+            raise HeaderError("invalid WCS: the linear transformation matrix "
+                              f"(PC/CD/CDELT) is singular ({detail})",
+                              path=str(path), hdu=hdu,
+                              keyword="PCi_j/CDi_j/CDELTi") from exc
+        raise HeaderError(f"invalid WCS ({detail})", path=str(path),
                           hdu=hdu) from exc
+
+
+def _is_zero(value: Any) -> bool:
+    try:
+        return value is not None and float(value) == 0.0
+    except (TypeError, ValueError):
+        return False
+
+
+def _check_celestial(celestial: WCS, path: Path, hdu: str) -> WCS:
+    """Refuse a celestial WCS whose pixel-to-sky matrix is singular or not
+    finite (pixels would have no area on the sky)."""
+    try:
+        matrix = np.asarray(celestial.pixel_scale_matrix, dtype=float)
+        det = float(np.linalg.det(matrix))
+        scale = float(np.max(np.abs(matrix)))
+    except Exception as exc:
+        raise HeaderError(f"invalid celestial WCS ({exc})", path=str(path),
+                          hdu=hdu) from exc
+    if not (np.isfinite(det) and np.isfinite(scale)) or scale == 0 or \
+            abs(det) <= 1e-10 * scale * scale:
+        raise HeaderError("the celestial WCS matrix (CDELT/PC/CD) is singular: "
+                          "pixels have no area on the sky", path=str(path),
+                          hdu=hdu, keyword="PCi_j/CDi_j/CDELTi", value=det,
+                          hint="fix the PC or CD matrix of the RA/Dec axes")
+    return celestial
 
 
 def _read_array(hdu: Any, path: Path, label: str,
@@ -417,7 +462,8 @@ def _check_not_empty(data: np.ndarray, path: Path, label: str) -> None:
         block = np.asarray(data[start:start + step])
         if block.dtype.kind != "f" or np.isfinite(block).any():
             return
-    raise DataContentError("the data are all NaN (no valid pixel)",
+    raise DataContentError("the data are all NaN or infinite (no valid "
+                           "pixel)",
                            path=str(path), hdu=label)
 
 
@@ -518,7 +564,7 @@ def _load_cube(hdul: fits.HDUList, path: Path, hdu: int | str | None,
                                   _merged(primary, header), n_channels,
                                   spec, path, label)
     _check_not_empty(data, path, label)
-    celestial = wcs.sub([lng + 1, lat + 1])
+    celestial = _check_celestial(wcs.sub([lng + 1, lat + 1]), path, label)
     variance = None
     err_index, kind = _find_error_hdu(hdul, index, error_hdu, path)
     if err_index is not None:
@@ -630,9 +676,11 @@ def _image_from_hdu(hdul: fits.HDUList, index: int, path: Path
     if image.size == 0:
         raise DataContentError("the map is empty", path=str(path), hdu=label)
     if not np.isfinite(image).any():
-        raise DataContentError("the map is all NaN (no valid pixel)",
+        raise DataContentError("the map is all NaN or infinite (no valid "
+                               "pixel)",
                                path=str(path), hdu=label)
-    return image, wcs.sub([lng + 1, lat + 1]), header, label
+    return (image, _check_celestial(wcs.sub([lng + 1, lat + 1]), path, label),
+            header, label)
 
 
 def _role_of(name: str) -> tuple[str | None, bool]:

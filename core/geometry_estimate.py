@@ -216,9 +216,10 @@ def intensity_centroid(maps, *, start=None, aperture_arcsec: float | None = None
     brightest pixel, and moves the window (Gaussian of sigma = half the
     aperture radius, truncated at twice the radius) to the centroid until
     the shift is below 0.01 pixel; a smooth window avoids the pixelisation
-    bias of a hard aperture (common practice). The error combines the photon noise of the
-    centroid (``sigma_x^2 = sum (x - xbar)^2 sigma_I^2 / F^2`` when the map
-    has errors) with the shift between apertures of 1x and 1.5x the radius.
+    bias of a hard aperture (common practice). The error combines the
+    photon noise of the centroid (``sigma_x^2 = sum w^2 (x - xbar)^2
+    sigma_I^2 / F^2`` with window w, when the map has errors) with the shift
+    between windows of 1x and 1.5x the radius.
 
     Parameters
     ----------

@@ -589,6 +589,13 @@ def compute_moments(cube: Cube, settings: MomentSettings | None = None, *,
             err_weights = np.stack([dv2 * u_kms ** k for k in range(5)])
             err_sums += err_weights.astype(var.dtype) @ var
         report(progress, c1 - w0, total, "moments")
+    if not any_finite.any():
+        raise DataContentError(
+            f"no valid data in the velocity window ({v_kms[w0]:.1f} to "
+            f"{v_kms[w1 - 1]:.1f} km/s): every channel there is NaN, "
+            "infinite or blank", path=path, keyword="vsys_kms",
+            hint="check the systemic velocity and the window, or the "
+                 "cube's blanking")
     return _assemble(cube, settings, sums, err_sums, any_valid, any_finite,
                      v_ref, (ny, nx))
 

@@ -40,8 +40,8 @@ from typing import Any
 
 import numpy as np
 
-from .errors import (Cancelled, FitError, GeometryError, GyrometerError,
-                     OutputError, RotationCurveError, SessionError)
+from .errors import (FitError, GeometryError, OutputError,
+                     RotationCurveError, SessionError)
 from .geometry import DiskGeometry, kpc_per_arcsec
 from .progress import CancelFlag, ProgressCallback, check_cancel, report
 from .session import InputSpec, Session, save_session, session_to_dict
@@ -58,6 +58,7 @@ __all__ = [
     "cube_velocities",
     "resolve_slits",
     "auto_slits",
+    "shifted_budget",
     "run_session",
     "result_row",
     "result_details",
@@ -487,6 +488,22 @@ def result_row(session: Session, measurement, budget, resonances,
         r_bar_kpc=r_bar_kpc, rate=rate, rate_class=rate_class)
 
 
+def shifted_budget(budget, shift_kms_arcsec: float):
+    """The same budget with every Omega_p value moved by a constant.
+
+    Used for the cube route: the Monte Carlo runs on the moment maps (where
+    the noise of each pixel is known) and its spread is attached to the
+    measurement made on the cube itself.
+    """
+    from .results import BudgetTerm, UncertaintyBudget
+
+    d = float(shift_kms_arcsec)
+    terms = tuple(BudgetTerm(t.name, t.n_draws, t.p16 + d, t.median + d,
+                             t.p84 + d, t.sigma, t.share) for t in budget.terms)
+    return UncertaintyBudget(terms, np.asarray(budget.draws_kms_arcsec) + d,
+                             budget.seed, budget.distance_mpc)
+
+
 def _seeds(seed: int) -> list[np.random.SeedSequence]:
     # children: 0 resonances, 1 bar rate, 2 distance draws
     return np.random.SeedSequence([int(seed), 0x6779726F]).spawn(3)
@@ -545,13 +562,22 @@ def run_session(session: Session, *, progress: ProgressCallback | None = None,
                               progress=p, cancel=cancel, **cube_args)
     notes.extend(measurement.warnings)
     p = stages.start("uncertainty budget")
-    budget = run_budget(maps, geometry, slits, session.budget,
-                        symmetric=slits.symmetric,
-                        measurement=measurement if session.input.kind != "cube"
-                        else None, progress=p, cancel=cancel)
     if session.input.kind == "cube":
-        notes.append("uncertainty budget computed on the moment maps of the "
-                      "cube")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            nominal = measure(maps, geometry, slits, symmetric=slits.symmetric,
+                              tracer=session.tracer, warn=False)
+    else:
+        nominal = measurement
+    budget = run_budget(maps, geometry, slits, session.budget,
+                        symmetric=slits.symmetric, measurement=nominal,
+                        progress=p, cancel=cancel)
+    if session.input.kind == "cube":
+        shift = (measurement.omega_p_kms_arcsec - nominal.omega_p_kms_arcsec)
+        budget = shifted_budget(budget, shift)
+        notes.append("cube route: the uncertainty budget was sampled on the "
+                     f"moment maps and shifted by {shift:+.4f} km/s/arcsec to "
+                     "the measurement on the cube")
     p = stages.start("diagnostics")
     conv, pa_sens = _diagnostics(maps, geometry, slits, notes, p, cancel)
     p = stages.start("rotation curve")
@@ -701,6 +727,7 @@ def output_paths(result: PipelineResult, folder: str | os.PathLike | None = None
 
 def export_result(result: PipelineResult, folder: str | os.PathLike | None = None,
                   *, overwrite: bool = False,
+                  progress: ProgressCallback | None = None,
                   cancel: CancelFlag | None = None) -> dict[str, Path]:
     """Write tables, figures, slit regions and the session file.
 
@@ -733,8 +760,9 @@ def export_result(result: PipelineResult, folder: str | os.PathLike | None = Non
     try:
         table = results_table(result) if result.session.output.tables else None
         figures_cache: dict[str, Any] = {}
-        for kind, final in paths.items():
+        for k, (kind, final) in enumerate(paths.items()):
             check_cancel(cancel, "writing outputs")
+            report(progress, k, len(paths), "writing outputs")
             tmp = staging / final.name
             if kind.startswith("table."):
                 fmt = kind.split(".", 1)[1]
@@ -762,6 +790,7 @@ def export_result(result: PipelineResult, folder: str | os.PathLike | None = Non
             check_writable(final, overwrite)
         for kind, final in paths.items():
             os.replace(staging / final.name, final)
+        report(progress, len(paths), len(paths), "writing outputs")
     finally:
         shutil.rmtree(staging, ignore_errors=True)
     return paths

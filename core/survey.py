@@ -47,6 +47,21 @@ figures, region and session files), ``results.ecsv`` and ``results.tex``
 crashes continues where it stopped when started again: a galaxy is skipped
 when the manifest records it as finished under the same checksum and its
 results file still exists; failed galaxies are tried again.
+
+Notes
+-----
+* The checksum (:func:`galaxy_key`) covers the SHA-256 of every input file
+  and every setting; file digests are cached in the manifest by path, size
+  and modification time, so a restart does not read gigabytes again.
+* Each galaxy's Monte Carlo budget runs in its worker with
+  ``uncertainty.workers = 1``: the sample is parallel across galaxies, not
+  within one. The run folder belongs to the run: a galaxy that runs again
+  replaces its own earlier outputs; a new run refuses a non-empty folder
+  that holds no manifest unless ``overwrite`` (``--force``) is given.
+* Dask: the client (this process) and the workers must see the recipes,
+  the data and the run folder at the same paths (a shared file system).
+  Dask's own worker memory limits apply; stopping a run cancels queued
+  galaxies and asks running ones to stop through a file in the run folder.
 """
 
 from __future__ import annotations
@@ -787,7 +802,7 @@ class _SerialEngine:
     def admits(self, need: int, running: Sequence[int]) -> bool:
         return not running
 
-    def lost(self, exc: BaseException) -> bool:
+    def lost(self, exc: BaseException, fut) -> bool:
         return False
 
     def stop(self, futures) -> None:
@@ -831,7 +846,9 @@ class _LocalEngine:
             initializer=_ignore_interrupts)
 
     def submit(self, task: GalaxyTask):
-        return self.pool.submit(run_galaxy, task)
+        fut = self.pool.submit(run_galaxy, task)
+        fut.gyrometer_pool = self.pool  # which pool, should it break
+        return fut
 
     def wait(self, futures, timeout: float):
         from concurrent.futures import FIRST_COMPLETED, wait
@@ -845,11 +862,13 @@ class _LocalEngine:
             return True
         return sum(running) + need <= self.budget
 
-    def lost(self, exc: BaseException) -> bool:
-        """A worker died (killed, out of memory): start a fresh pool."""
+    def lost(self, exc: BaseException, fut) -> bool:
+        """A worker died (killed, out of memory): start a fresh pool, once
+        per broken pool (every galaxy running in it reports the break)."""
         from concurrent.futures.process import BrokenProcessPool
 
-        if isinstance(exc, BrokenProcessPool):
+        if isinstance(exc, BrokenProcessPool) and \
+                getattr(fut, "gyrometer_pool", None) is self.pool:
             self.pool.shutdown(wait=False, cancel_futures=True)
             self._new_pool()
             return True
@@ -905,7 +924,7 @@ class _DaskEngine:
     def admits(self, need: int, running: Sequence[int]) -> bool:
         return True  # worker memory limits are the cluster's business
 
-    def lost(self, exc: BaseException) -> bool:
+    def lost(self, exc: BaseException, fut) -> bool:
         return False
 
     def stop(self, futures) -> None:
@@ -1178,11 +1197,8 @@ def run_sample(spec: SampleSpec, *, engine: str | None = None,
     durations: list[float] = []
     running: dict = {}  # future -> (task, memory estimate)
     eng = None
-    last = ""
 
     def tell(text: str) -> None:
-        nonlocal last
-        last = text
         n_failed = sum(o.status == "failed" for o in outcomes.values())
         n_done = len(skipped) + sum(o.status == "done"
                                     for o in outcomes.values())
@@ -1256,14 +1272,17 @@ def run_sample(spec: SampleSpec, *, engine: str | None = None,
                 try:
                     outcome = fut.result()
                 except Exception as exc:  # the engine lost the galaxy
-                    eng.lost(exc)
+                    broken = eng.lost(exc, fut)
+                    why = ("a worker process stopped abruptly (killed, out "
+                           "of memory or crashed) while this galaxy ran"
+                           if broken or "BrokenProcessPool" in
+                           type(exc).__name__ else
+                           f"the engine lost this galaxy ({exc})")
                     outcome = GalaxyOutcome(
                         task.galaxy, task.source, task.key,
                         "cancelled" if stopped else "failed",
                         error_type=type(exc).__name__,
-                        message=("the worker running this galaxy stopped "
-                                 f"abruptly ({exc or type(exc).__name__}; "
-                                 "killed, out of memory or crashed)"))
+                        message=f"{why}; it is tried again on the next run")
                 finish(outcome)
     except KeyboardInterrupt:  # Ctrl-C: running galaxies stop at their
         stopped = True            # next check; finished ones are kept

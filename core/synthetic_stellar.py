@@ -20,11 +20,12 @@ the maps (Tremaine & Weinberg 1984, ApJ 282, L5).
 
 Lines (band ``"cat"``, the near-infrared calcium triplet region): Ca II
 8498.02, 8542.09, 8662.14 Angstrom (air) from the line table of
-:mod:`gyrometer.core.lines` (vacuum values of NIST ASD converted to air with
-Morton 2000; the air values agree with the CaT index line centres of
-Cenarro et al. 2001, MNRAS 326, 959 - from memory), plus weaker Fe I 8514.07,
-8688.63 and Mg I 8806.76 Angstrom (air; NIST ASD, from memory). Depths and
-widths are illustrative, not a stellar population model.
+:mod:`gyrometer.core.lines` (NIST ASD vacuum values, stored there as "from
+memory", converted to air with Morton 2000, ApJS 130, 403); the air values
+agree with the CaT line centres of Cenarro et al. 2001, MNRAS 326, 959 (from
+memory). Plus weaker Fe I 8514.07, 8688.63 and Mg I 8806.76 Angstrom (air;
+NIST ASD, from memory). Depths and widths are illustrative, not a stellar
+population model.
 """
 
 from __future__ import annotations

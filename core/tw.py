@@ -185,7 +185,7 @@ def _row_sums(layout: _Layout, terms, valid) -> np.ndarray:
     n_ent = w.size
     mat = sp.csr_matrix((w, (layout.row, np.arange(n_ent))), shape=(n_rows, n_ent))
     wv = w * var_s
-    cols = np.empty((n_ent, _NSUMS))
+    cols = np.empty((n_ent, _NSUMS), order="F")
     cols[:, _B] = s
     cols[:, _A] = s * x
     cols[:, _C] = sv

@@ -8,8 +8,6 @@ import time
 import numpy as np
 import pytest
 
-pytest.importorskip("pytestqt")
-
 
 @pytest.fixture(scope="session")
 def small_mapset_file(tmp_path_factory):

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from PySide6.QtWidgets import QMessageBox
 
-from gyrometer.app.resultview import format_pattern_speed
+from gyrometer.app.resultview import _fmt, format_pattern_speed
 from gyrometer.core import pipeline, tw
 from gyrometer.core.session import load_session
 
@@ -71,6 +71,12 @@ def test_dragging_a_slit_updates_the_result_to_core_numbers(opened, qtbot):
     first = c.measurement.omega_p_kms_arcsec
     for k in range(1, 6):  # a drag of several mouse moves, then release
         item.drag_by(0.6 * k, -0.4 * k)
+    # while the button is still down, the plot already shows core's number
+    qtbot.waitUntil(lambda: c.live_updates >= 1 and not c._timer.isActive(), timeout=2000)
+    during = tw.measure(c.maps, c.geometry, c.slits, warn=False)
+    live = opened.result_view.live_text.textItem.toPlainText()
+    assert _fmt(during.omega_p_kms_arcsec, during.omega_p_err_kms_arcsec) in live
+    assert _fmt(during.omega_p_kms_kpc, during.omega_p_err_kms_kpc) in live
     item.drag_by(3.0, -2.0, finish=True)
     qtbot.waitUntil(lambda: not c._timer.isActive(), timeout=2000)
     moved = c.slits.slits[1]
@@ -81,7 +87,7 @@ def test_dragging_a_slit_updates_the_result_to_core_numbers(opened, qtbot):
                                                              rel=1e-12)
     assert c.measurement.omega_p_kms_arcsec != pytest.approx(first, rel=1e-9)
     # the live path coalesced the moves: fewer recomputes than mouse moves
-    assert 1 <= c.live_updates <= 6
+    assert 1 <= c.live_updates <= 7
 
 
 def test_a_whole_drag_is_one_undo_step(opened, qtbot):
@@ -148,6 +154,11 @@ def test_app_and_batch_pipeline_give_identical_numbers(opened, tmp_path, idle):
     assert c.budget is not None
     assert c.budget.combined.median == batch.budget.combined.median
     assert c.pipeline_result.row.galaxy == batch.row.galaxy
+    # the checks tab plots the same run's PA sensitivity
+    if batch.pa_sensitivity is not None:
+        curves = opened.checks_view.pa_plot.getPlotItem().listDataItems()
+        np.testing.assert_array_equal(curves[0].yData,
+                                      batch.pa_sensitivity.omega_p_kms_arcsec)
 
 
 def test_session_round_trip_gives_the_same_state_and_numbers(opened, tmp_path, qtbot,
@@ -293,3 +304,16 @@ def test_opening_a_cube_asks_for_moment_settings_then_shows_maps(window, tmp_pat
     assert c.maps.shape == (24, 24)
     assert c.measurement is not None
     assert not window.progress.isVisible()
+
+
+def test_the_sample_galaxy_opens_from_the_file_menu(window, idle, errors):
+    from gyrometer.app.controller import sample_path
+
+    assert sample_path() is not None, "sample_cubes/ should ship LBDP-037"
+    window.act_sample.trigger()
+    idle()
+    idle()
+    c = window.controller
+    assert not errors, errors
+    assert c.maps is not None and c.maps.name == "LBDP-037"
+    assert c.measurement is not None and np.isfinite(c.measurement.omega_p_kms_arcsec)

@@ -214,3 +214,21 @@ def test_unsaved_edits_mark_the_window_title(opened, tmp_path):
     opened.save_session()
     assert not opened.isWindowModified()
     assert (tmp_path / "s.toml").is_file()
+
+
+def test_arrow_keys_on_the_map_nudge_the_selected_slit(opened, qtbot):
+    from PySide6.QtTest import QTest
+
+    c = opened.controller
+    c.select_slit(1)
+    y = c.slits.slits[1].offset_arcsec
+    graphics = opened.map_view.graphics
+    graphics.setFocus()
+    qtbot.waitUntil(graphics.hasFocus, timeout=2000)
+    QTest.keyClick(graphics, Qt.Key.Key_Up)
+    assert c.slits.slits[1].offset_arcsec > y
+    QTest.keyClick(graphics, Qt.Key.Key_Down, Qt.KeyboardModifier.ShiftModifier)
+    assert c.slits.slits[1].offset_arcsec < y
+    c.undo_stack.undo()
+    c.undo_stack.undo()
+    assert c.slits.slits[1].offset_arcsec == y

@@ -207,3 +207,32 @@ def test_the_documented_api_example_runs(tmp_path, monkeypatch):
     assert namespace["table"].row("CR").status == "found"
     assert (tmp_path / "out" / "LBDP-011.ecsv").is_file()
     assert namespace["tw"].omega_p_kms_kpc == pytest.approx(60.0, rel=0.1)
+
+
+def test_shifted_budget_moves_every_value_and_keeps_the_spread():
+    from gyrometer.core.pipeline import shifted_budget
+    from gyrometer.core.results import BudgetTerm, UncertaintyBudget
+
+    budget = UncertaintyBudget((BudgetTerm("noise", 3, 0.9, 1.0, 1.2, 0.15, 1.0),),
+                               np.array([0.9, 1.0, 1.2]), seed=4,
+                               distance_mpc=10.0)
+    moved = shifted_budget(budget, 0.5)
+    t = moved.terms[0]
+    assert (t.p16, t.median, t.p84, t.sigma) == pytest.approx((1.4, 1.5, 1.7, 0.15))
+    np.testing.assert_allclose(moved.draws_kms_arcsec, [1.4, 1.5, 1.7])
+    assert moved.seed == 4 and moved.distance_mpc == 10.0
+
+
+def test_api_estimates_the_geometry_and_keeps_the_distance():
+    from gyrometer.core import api
+    from gyrometer.core.synthetic import barred_model, make_maps
+
+    maps, truth = make_maps(barred_model(name="LBDP-905", shape=(48, 48),
+                                         pixel_scale_arcsec=1.0,
+                                         bar_amplitude=0.1))
+    g = api.estimate_geometry(maps, distance_mpc=20.0, pa_err_deg=3.0)
+    assert g.distance_mpc == 20.0 and g.pa_err_deg == 3.0
+    # a weak bar barely biases the kinematic PA (geometry_estimate docstring)
+    assert abs(g.pa_deg - truth.geometry.pa_deg) < 5.0
+    slits = api.make_slits(maps, g, count=5, spacing_arcsec=3.0)
+    assert len(slits) == 5 and slits.symmetric

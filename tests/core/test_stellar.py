@@ -100,6 +100,10 @@ def test_noise_monte_carlo_gives_errors_that_cover_the_truth(clean):
     assert np.all(np.abs(ints.v_mean_kms - exact) < 4 * ints.v_err_kms)
     m = result.measurement
     assert abs(m.omega_p_kms_arcsec - truth.omega_p_kms_arcsec[0]) < 4 * m.omega_p_err_kms_arcsec
+    draws = result.omega_p_draws_kms_arcsec
+    assert draws.shape == (12,)
+    # the spread of the noise draws is of the order of the fit error
+    assert 0.3 < np.std(draws) / m.omega_p_err_kms_arcsec < 3.0
     fit = result.slit_fits[0]
     assert fit.draws_kms.shape == (12,)
     assert fit.model.shape == fit.flux.shape == fit.wave_A.shape
@@ -248,3 +252,18 @@ def test_monte_carlo_is_reproducible_with_a_seed(clean):
                            template=synthetic_template(), warn=False)
     assert np.array_equal(a.measurement.integrals.v_err_kms,
                           b.measurement.integrals.v_err_kms)
+
+
+def test_decreasing_wavelength_axis_and_float64_data_give_the_same_result(
+        clean, synthetic_result):
+    cube, truth, scene, _ = clean
+    axis = SpectralAxis("AWAV", cube.spectral.values[::-1], "Angstrom", air=True)
+    flipped = Cube(np.asarray(cube.data, float)[::-1], cube.wcs, axis, cube.unit,
+                   cube.provenance, variance=np.asarray(cube.variance)[::-1])
+    settings = StellarSettings(n_mc=0, continuum_band_A=scene.continuum_band_A)
+    result = measure_absorption(flipped, truth.geometry, SLITS, settings,
+                                template=synthetic_template(), warn=False)
+    assert np.allclose(result.measurement.integrals.v_mean_kms,
+                       synthetic_result.measurement.integrals.v_mean_kms, atol=1e-3)
+    assert np.allclose(result.measurement.integrals.x_mean_arcsec,
+                       synthetic_result.measurement.integrals.x_mean_arcsec, atol=1e-9)
