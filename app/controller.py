@@ -637,7 +637,8 @@ class Controller(QObject):
                           geometry_guess=(), slits=self.slits,
                           symmetric=self.slits.symmetric)
 
-    def _session_for(self, path: Path, data):
+    @staticmethod
+    def _session_for(path: Path, data):
         from gyrometer.core.dataset import Cube
         from gyrometer.core.session import InputSpec, Session
         if isinstance(data, Cube):

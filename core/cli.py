@@ -491,6 +491,11 @@ def _run_options(p: argparse.ArgumentParser) -> None:
                    help="skip the figures (faster)")
 
 
+def _wrap(text: str) -> str:
+    import textwrap
+    return textwrap.fill(text, 78)
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the ``gyrometer`` command."""
     from . import __version__
@@ -507,10 +512,10 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "demo", formatter_class=fmt, epilog=_EPILOG,
         help="measure the bundled sample galaxy",
-        description="Measure the bundled synthetic sample galaxy and print "
+        description=_wrap("Measure the bundled synthetic sample galaxy and print "
                     "Omega_p, the resonance radii, R and the uncertainty "
                     "budget. With a display, opens the desktop app with the "
-                    "sample loaded instead (unless --headless).")
+                    "sample loaded instead (unless --headless)."))
     p.add_argument("--headless", action="store_true",
                    help="never open the desktop app")
     p.add_argument("--galaxy", default="LBDP-011",
@@ -525,10 +530,10 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "starter", formatter_class=fmt, epilog=_EPILOG,
         help="write a recipe for a data file",
-        description="Write a recipe (TOML) for a FITS cube or map set with "
+        description=_wrap("Write a recipe (TOML) for a FITS cube or map set with "
                     "every setting present and commented; values that can "
                     "be read from the data (name, centre, PSF, slit spacing) "
-                    "are filled in. Edit it, then run 'gyrometer check'.")
+                    "are filled in. Edit it, then run 'gyrometer check'."))
     p.add_argument("data", help="FITS cube or map set")
     p.add_argument("-o", "--output", metavar="RECIPE",
                    help="recipe file to write (default: print it)")
@@ -540,23 +545,26 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "check", formatter_class=fmt, epilog=_EPILOG,
         help="validate recipes without running them",
-        description="Check recipes (or saved sessions): types, unknown keys, "
+        description=_wrap("Check recipes (or saved sessions): types, unknown keys, "
                     "missing files. Each fault is reported with its key, "
-                    "e.g. 'geometry.pa_deg'.")
-    p.add_argument("recipes", nargs="+", metavar="RECIPE")
+                    "e.g. 'geometry.pa_deg'."))
+    p.add_argument("recipes", nargs="+", metavar="RECIPE",
+                   help="recipe (.toml) or saved session file")
     p.set_defaults(func=_cmd_check)
     _common(p)
 
     p = sub.add_parser(
         "measure", formatter_class=fmt, epilog=_EPILOG,
         help="run recipes or sessions: tables, figures, session file",
-        description="Run the whole measurement of each recipe (or saved "
+        description=_wrap("Run the whole measurement of each recipe (or saved "
                     "session): geometry, slits, Omega_p, the uncertainty "
                     "budget, diagnostics, rotation curve, resonances and R. "
                     "Writes the results tables (ECSV, CSV, JSON, LaTeX), "
                     "figures, the slit region file and a session file that "
-                    "reproduces the result.")
-    p.add_argument("recipes", nargs="+", metavar="RECIPE")
+                    "reproduces the result. Several recipes make a whole "
+                    "sample; --table collects them into one paper table."))
+    p.add_argument("recipes", nargs="+", metavar="RECIPE",
+                   help="recipe (.toml) or saved session file")
     _run_options(p)
     p.add_argument("--keep-going", action="store_true",
                    help="with several recipes, go on after a failed one")
@@ -571,8 +579,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "moments", formatter_class=fmt, epilog=_EPILOG,
         help="make moment maps of a cube",
-        description="Moment 0, 1 and 2 maps with errors of a spectral cube, "
-                    "written as one multi-extension FITS map set.")
+        description=_wrap("Moment 0, 1 and 2 maps with errors of a spectral cube, "
+                    "written as one multi-extension FITS map set."))
     p.add_argument("cube", help="FITS spectral cube")
     p.add_argument("-o", "--output", metavar="MAPS",
                    help="map set to write (default: CUBE_maps.fits)")
@@ -596,10 +604,10 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "merge", formatter_class=fmt, epilog=_EPILOG,
         help="combine results files into one paper table",
-        description="Combine results files (.ecsv, .json or .csv written by "
+        description=_wrap("Combine results files (.ecsv, .json or .csv written by "
                     "'gyrometer measure') into one table, one row per "
                     "galaxy. The output format follows the suffix: .tex "
-                    "(AASTeX deluxetable or tabular), .ecsv, .csv, .json.")
+                    "(AASTeX deluxetable or tabular), .ecsv, .csv, .json."))
     p.add_argument("results", nargs="+", metavar="RESULTS")
     p.add_argument("-o", "--output", required=True, metavar="TABLE")
     p.add_argument("--style", choices=("aastex", "tabular"), default="aastex",
@@ -612,11 +620,11 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser(
         "regions", formatter_class=fmt, epilog=_EPILOG,
         help="export or import slits as sky region files",
-        description="Slits as sky polygons (DS9 .reg or CASA .crtf). "
+        description=_wrap("Slits as sky polygons (DS9 .reg or CASA .crtf). "
                     "'export' writes the slits of a recipe or session; "
                     "'import' reads polygons back as slits (they must be "
                     "rectangles parallel to the line of nodes) and writes a "
-                    "session that uses them.")
+                    "session that uses them."))
     rsub = p.add_subparsers(dest="action", metavar="ACTION")
     rsub.required = True
     q = rsub.add_parser("export", help="slits of a recipe/session to a file",

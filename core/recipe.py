@@ -105,9 +105,16 @@ def describe_session(session: Session) -> list[str]:
                                        "none": "none (no resonances)"}[rc.source]
                  + ("" if rc.source == "none" else f", {rc.model} model"))
     bar = session.bar
-    lines.append("bar length: " + ("estimated" if bar.length_arcsec is None
-                                   else "none" if bar.length_arcsec == 0
-                                   else f"{bar.length_arcsec:g} arcsec"))
+    if bar.length_arcsec is None:
+        text = "estimated from the intensity map (Fourier analysis)"
+    elif bar.length_arcsec == 0:
+        text = "none (no R)"
+    else:
+        text = f"{bar.length_arcsec:g} +- {bar.length_err_arcsec:g} arcsec " + (
+            f"on the sky at PA {bar.pa_deg:g} deg, deprojected" if bar.on_sky
+            and bar.pa_deg is not None else "on the sky, PA estimated, "
+            "deprojected" if bar.on_sky else "deprojected")
+    lines.append("bar length: " + text)
     out = session.output
     lines.append(f"outputs: {out.folder} ({', '.join(out.tables)}; figures: "
                  f"{', '.join(out.figures) or 'none'})")

@@ -497,7 +497,10 @@ def load_sample(path: str | os.PathLike) -> SampleSpec:
                                   source=f"{tpath} row {k}",
                                   fallback=fallback, sample_path=source))
     else:
+        itself = p.resolve()
         for recipe in _recipe_paths(sample, base, source):
+            if recipe.resolve() == itself:  # folder = "." or a wide glob
+                continue
             fallback = recipe.name.split(".")[0]
             try:
                 rdoc = read_toml(recipe, RecipeError)

@@ -59,16 +59,33 @@ def idle(qtbot, window):
     return wait
 
 
+@pytest.fixture(scope="session")
+def prepared(small_mapset_file):
+    """What opening the small map set computes in the background (session,
+    maps, estimated geometry, slits), through the controller's own code,
+    computed once: the geometry fit dominates the time of opening."""
+    from gyrometer.app.controller import Controller
+    from gyrometer.core.fitsio import open_data
+
+    path, _ = small_mapset_file
+    maps = open_data(path)
+    session = Controller._session_for(path, maps)
+    geometry, slits, notes = Controller._prepare(session, maps, lambda *a: None)
+    return session, maps, geometry, slits, notes
+
+
 @pytest.fixture
-def opened(window, small_mapset_file, idle, errors):
-    """The window with the small map set open, fast budget settings, and
-    the distance of the synthetic truth."""
+def opened(window, small_mapset_file, prepared, errors):
+    """The window with the small map set installed as the background open
+    would install it (``test_opening_...`` opens it for real), fast budget
+    settings, and the distance of the synthetic truth."""
     from gyrometer.core.budget import BudgetSettings
 
     path, truth = small_mapset_file
     c = window.controller
-    c.open_path(path)
-    idle()
+    session, maps, geometry, slits, notes = prepared
+    c.source_path = str(path)
+    c._install(session, maps, maps, geometry, slits, notes)
     assert not errors, errors
     assert c.maps is not None
     # fewer draws keep the tests fast; same settings reach the batch run

@@ -15,8 +15,17 @@ from gyrometer.core import pipeline, tw
 from gyrometer.core.session import load_session
 
 
-def test_opening_a_map_set_shows_maps_geometry_slits_and_a_result(opened):
+def test_opening_a_map_set_shows_maps_geometry_slits_and_a_result(window, small_mapset_file,
+                                                                 idle, errors, settings):
+    path, _ = small_mapset_file
+    opened = window
     c = opened.controller
+    assert c.open_path(path)
+    assert window.progress.isVisible()
+    idle()
+    assert not errors, errors
+    assert str(path.resolve()) in settings.recent_files()
+    assert opened.recent_menu.actions()[0].text() == path.name
     view = opened.map_view
     assert view.image.image is not None
     assert view.image.image.shape == c.maps.shape

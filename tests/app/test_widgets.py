@@ -129,13 +129,16 @@ def test_estimator_button_applies_core_estimate_with_errors(opened, idle):
         est.pa_err_deg, abs=0.01)
 
 
-def test_recent_files_and_settings_live_in_the_given_config_folder(opened, settings,
-                                                                   small_mapset_file):
-    path, _ = small_mapset_file
-    assert settings.path.parent == settings.folder
-    assert settings.path.is_file()
-    assert str(path.resolve()) in settings.recent_files()
-    assert opened.recent_menu.actions()[0].text() == path.name
+def test_recent_files_and_settings_live_in_the_given_config_folder(window, settings,
+                                                                   tmp_path):
+    assert settings.folder == tmp_path / "config"
+    window.controller._remember(tmp_path / "a.fits")
+    window.controller._remember(tmp_path / "b.fits")
+    assert settings.path.parent == settings.folder and settings.path.is_file()
+    assert settings.recent_files()[:2] == [str(tmp_path / "b.fits"), str(tmp_path / "a.fits")]
+    assert [a.text() for a in window.recent_menu.actions()[:2]] == ["b.fits", "a.fits"]
+    from gyrometer.app.settings import AppSettings
+    assert AppSettings(settings.folder).recent_files() == settings.recent_files()
 
 
 def test_about_box_shows_the_version(window, monkeypatch):

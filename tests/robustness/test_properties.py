@@ -84,9 +84,11 @@ def test_pixel_sky_disk_round_trip(ra, dec, rot, scale, flip, pa, inc, centre,
                                rtol=1e-12, atol=1e-9)
     R, cos_t, sin_t = lon_to_disk(X, Y, inc)
     x_disk, y_disk = R * cos_t, R * sin_t
-    np.testing.assert_allclose(x_disk, X, atol=1e-9 * (1 + np.abs(X)))
+    np.testing.assert_allclose(x_disk, X, rtol=1e-12,
+                               atol=1e-9 * (1 + np.max(np.abs(X))))
     ci = math.cos(math.radians(inc))
-    np.testing.assert_allclose(y_disk * ci, Y, atol=1e-9 * (1 + np.abs(Y)))
+    np.testing.assert_allclose(y_disk * ci, Y, rtol=1e-12,
+                               atol=1e-9 * (1 + np.max(np.abs(Y))))
     e2, n2 = lon_to_sky(x_disk, y_disk * ci, pa)
     qx, qy = offsets_to_pixel(wcs, ra0, dec0, e2, n2)
     np.testing.assert_allclose(qx, px, atol=1e-6)
@@ -259,10 +261,13 @@ def test_rotating_wcs_and_position_angle_together_changes_nothing(scene, turn):
                       wcs=wcs, intensity_err=maps.intensity_err,
                       velocity_err_kms=maps.velocity_err_kms)
     b = _tw(remap(turned), geometry.with_(pa_deg=geometry.pa_deg + turn), slits)
+    # the recentred tangent point moves sky offsets by parts in 1e-6 (the
+    # TAN projection is not exactly affine); a wrong sense of rotation
+    # would change the integrals at order unity
     np.testing.assert_array_equal(a.used, b.used)
     np.testing.assert_allclose(b.integrals.x_mean_arcsec, a.integrals.x_mean_arcsec,
-                               rtol=1e-6, atol=1e-6)
+                               rtol=1e-5, atol=1e-5)
     np.testing.assert_allclose(b.integrals.v_mean_kms, a.integrals.v_mean_kms,
-                               rtol=1e-6, atol=1e-5)
-    assert b.omega_p_kms_arcsec == pytest.approx(a.omega_p_kms_arcsec, rel=1e-5,
-                                                 abs=1e-7)
+                               rtol=1e-5, atol=1e-4)
+    assert b.omega_p_kms_arcsec == pytest.approx(a.omega_p_kms_arcsec, rel=1e-4,
+                                                 abs=1e-6)
