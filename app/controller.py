@@ -607,6 +607,10 @@ class Controller(QObject):
 
         def done(result):
             est, new_geometry = result
+            # keep the history of where values came from, without repeats
+            parts = list(dict.fromkeys(p.strip() for p in new_geometry.source.split(";")
+                                       if p.strip()))
+            new_geometry = new_geometry.with_(source="; ".join(parts[-3:]))
             self.estimate_ready.emit(key, est)
             self.status.emit(describe_estimate(est))
             if self.maps is maps:

@@ -140,7 +140,9 @@ class QtGeometryPanel(QGroupBox):
             box.blockSignals(True)
             box.setValue(float(getattr(geometry, name)))
             box.blockSignals(False)
-        self.source.setText(f"<i>Source: {geometry.source}</i>")
+        centre = geometry.center.to_string("hmsdms", precision=2, sep=":")
+        self.source.setText(f"<small>Centre {centre.replace(' ', ', ')}<br>"
+                            f"<i>Source: {geometry.source}</i></small>")
 
     def _value_edited(self, name: str) -> None:
         geometry = self.controller.geometry

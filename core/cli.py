@@ -173,13 +173,19 @@ def format_summary(result, paths: dict | None = None,
         for r in result.resonances.rows:
             if r.name == "CR":
                 continue
-            if math.isfinite(r.median_arcsec):
+            # Quote a radius only where the nominal solution found one; a
+            # median over the few draws that happen to cross is misleading.
+            if r.status == "found" and math.isfinite(r.median_arcsec):
                 val = (f"{r.median_arcsec * scale:.2f} kpc" if scale
                        else f"{r.median_arcsec:.1f} arcsec")
+                if r.fraction_found < 0.95:
+                    val += f" (in {100 * r.fraction_found:.0f}% of draws)"
             else:
                 val = r.status
+                if r.fraction_found >= 0.005:
+                    val += f" (crosses in {100 * r.fraction_found:.0f}% of draws)"
             parts.append(f"{r.name} {val}")
-        lines.append("  resonances      " + "; ".join(parts))
+        lines.append("  resonances      " + "\n                  ".join(parts))
     if not row.r_bar_arcsec.is_missing:
         b = row.r_bar_arcsec
         text = (f"  bar             R_bar = {_pm(b.value, b.plus, b.minus, 'arcsec')}"

@@ -174,7 +174,10 @@ def map_figure(maps, geometry, slits, *, used=None, title: str = ""):
             ax.coords[1].set_axislabel("Dec (ICRS)" if j == 0 else " ")
             if j == 1:
                 ax.coords[1].set_ticklabel_visible(False)
-            bar = fig.colorbar(im, ax=ax, shrink=0.85, pad=0.01)
+            # Colour bars above the panels: a long intensity unit beside the
+            # left panel would run into the right one.
+            bar = fig.colorbar(im, ax=ax, location="top", shrink=0.85,
+                               pad=0.02, aspect=30)
             bar.set_label(label)
         if title:
             fig.suptitle(title)

@@ -164,11 +164,20 @@ def _open(path: Path) -> fits.HDUList:
                              path=str(path)) from exc
     size = path.stat().st_size
     for index, hdu in enumerate(hdul):
-        info = hdul.fileinfo(index)
-        if info is None:
-            continue
-        needed = info["datLoc"] + _raw_nbytes(hdu.header)
-        if needed > size:
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                info = hdul.fileinfo(index)
+                needed = (None if info is None else
+                          info["datLoc"] + _raw_nbytes(hdu.header))
+        except Exception as exc:  # an unparsable card, a bad NAXISn ...
+            hdul.close()
+            raise InputFileError(f"invalid FITS header ({exc})",
+                                 path=str(path), hdu=index,
+                                 hint="the header breaks the FITS standard; "
+                                      "check it with astropy's fitsinfo"
+                                 ) from exc
+        if needed is not None and needed > size:
             hdul.close()
             raise InputFileError(
                 f"truncated file: HDU {index} needs {needed} bytes but the "
@@ -886,10 +895,9 @@ dispersion_err : path-like, optional
 def open_data(path: str | os.PathLike) -> Cube | MapSet:
     """Load a file as a cube if it holds a 3D image, else as a map set."""
     target = _check_path(path)
-    hdul = _open(target)
-    is_cube = any(isinstance(h, (fits.PrimaryHDU, fits.ImageHDU))
-                  and len(_significant_axes(h.header)) >= 3 for h in hdul)
-    hdul.close()
+    with _open(target) as hdul:
+        is_cube = any(isinstance(h, (fits.PrimaryHDU, fits.ImageHDU))
+                      and len(_significant_axes(h.header)) >= 3 for h in hdul)
     return load_cube(target) if is_cube else load_mapset(target)
 
 
