@@ -16,22 +16,27 @@ All science is done by :mod:`gyrometer.core`. Long work runs in a
 from __future__ import annotations
 
 import time
-from dataclasses import replace
+from dataclasses import fields, replace
 from pathlib import Path
 
 import numpy as np
 from PySide6.QtCore import QObject, QTimer, Signal
 from PySide6.QtGui import QUndoStack
 
-from gyrometer.core.errors import Cancelled, GyrometerError, SlitError
+from gyrometer.core.errors import Cancelled, GyrometerError, OutputError, SlitError
 from gyrometer.core.geometry import DiskGeometry
 from gyrometer.core.slits import Slit, SlitSet
 
+from .autosave import AutoSaver, Recoverable
 from .settings import AppSettings
 from .tasks import TaskRunner
 from .undo import EditState, StateCommand
 
-__all__ = ["Controller", "LIVE_DELAY_MS"]
+__all__ = ["Controller", "LIVE_DELAY_MS", "ROUTES", "display_maps"]
+
+#: How a cube becomes a measurement: emission-line moment maps, or the
+#: summed spectra of the slits of an absorption-line cube.
+ROUTES = ("emission", "absorption")
 
 #: Shortest interval between two live recomputes while dragging, ms; the
 #: mouse events that arrive meanwhile are coalesced into one recompute.
@@ -64,6 +69,17 @@ class Controller(QObject):
         The pipeline result whose convergence and PA checks are shown, or None.
     estimate_ready(str, object)
         Name and result of a geometry estimator.
+    radial_changed(object)
+        New :class:`~gyrometer.core.radial.RadialResult` or None.
+    absorption_changed(object)
+        New :class:`~gyrometer.core.stellar.AbsorptionResult` or None.
+    route_changed(str)
+        ``"maps"``, ``"emission"`` (cube through moment maps) or
+        ``"absorption"`` (cube through slit spectra).
+    stale_changed(object)
+        Frozenset of the results made for an older geometry or slit set:
+        any of ``"full"`` (the last full run), ``"radial"``,
+        ``"absorption"``.
     error_raised(str, str)
         Title and message of a failure; shown once by the window.
     status(str)
@@ -84,6 +100,10 @@ class Controller(QObject):
     error_raised = Signal(str, str)
     status = Signal(str)
     recent_changed = Signal(list)
+    radial_changed = Signal(object)
+    absorption_changed = Signal(object)
+    route_changed = Signal(str)
+    stale_changed = Signal(object)
 
     def __init__(self, settings: AppSettings | None = None,
                  parent: QObject | None = None) -> None:
@@ -117,6 +137,21 @@ class Controller(QObject):
         self._timer.timeout.connect(self._flush_live)
         self.live_updates = 0
         self._last_flush = 0.0
+        # -- results beyond the live one, with the state they were made for --
+        self.route = "maps"
+        self.radial = None
+        self.radial_settings = None
+        self.absorption = None
+        self.stellar_settings = None
+        self.stale: frozenset = frozenset()
+        self._made_for: dict[str, tuple] = {}
+        # -- crash safety: the session is autosaved after every change --
+        self.autosave = AutoSaver(self.settings.autosave_folder(),
+                                  self._autosave_text, parent=self)
+        for signal in (self.geometry_changed, self.slits_changed,
+                       self.session_changed):
+            signal.connect(self.autosave.schedule)
+        self.autosave.failed.connect(self.status)
 
     # ------------------------------------------------------------------
     # errors: the one place where GyrometerError is caught
@@ -237,6 +272,9 @@ class Controller(QObject):
         self.budget = None
         self.dynamics = None
         self.pipeline_result = None
+        self.radial = None
+        self.absorption = None
+        self._made_for = {}
         self.undo_stack.clear()
         if geometry is None:
             geometry = self._starting_geometry(maps)
@@ -253,6 +291,9 @@ class Controller(QObject):
         self.budget_changed.emit(None)
         self.dynamics_changed.emit(None)
         self.checks_changed.emit(None)
+        self.radial_changed.emit(None)
+        self.absorption_changed.emit(None)
+        self._check_stale()
         self._remeasure()
         self.status.emit(f"{maps.name or 'maps'}: {maps.shape[1]}x{maps.shape[0]} "
                          f"pixels, tracer {maps.tracer}")
@@ -307,6 +348,7 @@ class Controller(QObject):
             self.selection_changed.emit(selected)
         if geometry_new or slits_new:
             self.budget_changed.emit(None)
+            self._check_stale()
             self._remeasure()
 
     def set_geometry(self, geometry: DiskGeometry, text: str = "change geometry") -> None:
@@ -461,6 +503,7 @@ class Controller(QObject):
                 self.undo_stack.push(command)
                 self.budget = None
                 self.budget_changed.emit(None)
+                self._check_stale()
 
     @property
     def dragging(self) -> bool:
@@ -489,12 +532,73 @@ class Controller(QObject):
         self._set_measurement(measurement)
 
     # ------------------------------------------------------------------
+    # results made for an older state
+    # ------------------------------------------------------------------
+    def _state_key(self) -> tuple:
+        return (self.geometry, self.slits)
+
+    def _mark_made(self, name: str, key: tuple) -> None:
+        self._made_for[name] = key
+        self._check_stale()
+
+    def _check_stale(self) -> None:
+        """Recompute which results belong to an older geometry or slit set
+        (compared by value, so undoing an edit makes them current again)."""
+        now = self._state_key()
+        stale = frozenset(name for name, key in self._made_for.items()
+                          if key[0] != now[0] or key[1] != now[1])
+        if stale != self.stale:
+            was_absorption = "absorption" in self.stale
+            self.stale = stale
+            self.stale_changed.emit(stale)
+            if self.route == "absorption" and was_absorption != ("absorption" in stale):
+                self._remeasure()
+
+    # ------------------------------------------------------------------
+    # crash safety
+    # ------------------------------------------------------------------
+    def _autosave_text(self):
+        """``(session TOML, source path)`` of the screen, for the autosave."""
+        if self.maps is None or self.geometry is None or self.slits is None:
+            return None
+        return self.current_session().to_toml(), self.source_path or ""
+
+    def discard_autosave(self) -> None:
+        """Remove this window's autosave (called on a clean exit)."""
+        self.autosave.discard()
+
+    def recover(self, item: Recoverable) -> bool:
+        """Open an autosave left by a crashed window (background).
+
+        The recovered job gets no file name (Save asks for one), and the
+        old autosave is removed once it has been opened.
+        """
+        from gyrometer.core.session import load_session
+        session = self._guard("Recover session", load_session, item.session_path)
+        if session is None:
+            return False
+
+        def after():
+            item.discard()
+            self.source_path = None
+            self.session_changed.emit(self.session)
+            self.autosave.save_now()
+            self.status.emit(f"Recovered {item.describe()}; save it to keep it")
+
+        return self._open_session(session, f"Recover {item.describe()}", after)
+
+    # ------------------------------------------------------------------
     # measurement
     # ------------------------------------------------------------------
     def _remeasure(self) -> None:
         """Recompute the measurement for the current maps, geometry, slits."""
         if self.maps is None or self.geometry is None or self.slits is None:
             self._set_measurement(None)
+            return
+        if self.route == "absorption":
+            # no live value: the slit spectra are fitted on request
+            current = self.absorption is not None and "absorption" not in self.stale
+            self._set_measurement(self.absorption.measurement if current else None)
             return
         from gyrometer.core import tw
         try:
@@ -637,9 +741,9 @@ class Controller(QObject):
         base = self.session if self.session is not None else Session()
         if self.geometry is None or self.slits is None:
             return base
-        return base.with_(name=self.galaxy_name(), geometry=self.geometry,
-                          geometry_guess=(), slits=self.slits,
-                          symmetric=self.slits.symmetric)
+        return self._with_routes(base.with_(
+            name=self.galaxy_name(), geometry=self.geometry, geometry_guess=(),
+            slits=self.slits, symmetric=self.slits.symmetric))
 
     @staticmethod
     def _session_for(path: Path, data):
@@ -669,23 +773,41 @@ class Controller(QObject):
         slits = pipeline.resolve_slits(session, maps, geometry)
         return geometry, slits, notes
 
-    def _install(self, session, data, maps, geometry, slits, notes) -> None:
+    def _install(self, session, data, maps, geometry, slits, notes,
+                 route: str | None = None) -> None:
         from gyrometer.core.dataset import Cube
         self.session = session
         self.cube = data if isinstance(data, Cube) else None
+        self.route = route or ("emission" if self.cube is not None else "maps")
+        self.radial_settings = self._session_radial(session)
+        if self.route == "absorption":
+            self.stellar_settings = (self._session_stellar(session)
+                                     or self.stellar_settings or self._default_stellar())
         self.set_maps(maps, geometry, slits)
+        self.route_changed.emit(self.route)
         self.session_changed.emit(session)
         for note in notes:
             self.status.emit(note)
 
     def open_session(self, path: str | Path) -> bool:
         """Open a session file: load its data, geometry and slits (background)."""
-        from gyrometer.core import pipeline
         from gyrometer.core.session import load_session
         path = Path(path)
         session = self._guard(f"Open {path.name}", load_session, path)
         if session is None:
             return False
+
+        def after():
+            self.source_path = str(path)
+            self._remember(path)
+
+        return self._open_session(session, f"Open {path.name}", after)
+
+    def _open_session(self, session, title: str, after) -> bool:
+        from gyrometer.core import pipeline
+        stellar = self._session_stellar(session)
+        if session.input.kind == "cube" and stellar is not None:
+            return self._open_absorption_session(session, stellar, title, after)
 
         def work(progress, cancel):
             data, sums = pipeline.load_inputs(session.input, tracer=session.tracer,
@@ -699,24 +821,225 @@ class Controller(QObject):
 
         def done(result):
             data, maps, geometry, slits, notes = result
-            self.source_path = str(path)
-            self._remember(path)
             self._install(session, data, maps, geometry, slits, notes)
+            after()
 
-        return self._start(f"Open {path.name}", work, done)
+        return self._start(title, work, done)
 
-    def save_session(self, path: str | Path, overwrite: bool = False) -> bool:
-        """Write the current session file (TOML); True on success."""
+    def save_session(self, path: str | Path, overwrite: bool = False,
+                     confirm=None) -> bool:
+        """Write the current session file (TOML, atomic); True on success.
+
+        An existing file is replaced only with ``overwrite``, or when
+        ``confirm(question)`` (the window asks the user) returns True.
+        """
         from gyrometer.core.session import save_session
         if self.maps is None:
             return False
-        written = self._guard("Save session", save_session, self.current_session(),
-                              path, overwrite)
-        if written is None:
+        session = self.current_session()
+        try:
+            save_session(session, path, overwrite)
+        except OutputError as exc:
+            if overwrite or not Path(path).exists() or confirm is None:
+                self._report_error("Save session", exc)
+                return False
+            if not confirm(f"{path} already exists.\n\nReplace it with the "
+                           "current session?"):
+                self.status.emit("Session not saved; the existing file is unchanged")
+                return False
+            return self.save_session(path, overwrite=True)
+        except Exception as exc:  # noqa: BLE001 - see _report_error
+            self._report_error("Save session", exc)
             return False
         self.settings.set_last_folder(Path(path).resolve().parent)
         self.status.emit(f"Session saved to {path}")
         return True
+
+    # ------------------------------------------------------------------
+    # session sections of the other routes (read from core's Session)
+    # ------------------------------------------------------------------
+    @staticmethod
+    def _session_value(session, cls):
+        """``(field name, value)`` of the session field holding a ``cls``."""
+        for f in fields(session):
+            value = getattr(session, f.name)
+            if isinstance(value, cls):
+                return f.name, value
+        return None, None
+
+    @staticmethod
+    def _session_radial(session):
+        from gyrometer.core.radial import RadialSettings
+        value = Controller._session_value(session, RadialSettings)[1]
+        return value if value is not None else RadialSettings()
+
+    @staticmethod
+    def _session_stellar(session):
+        """The session's absorption-route settings, or None (emission route)."""
+        from gyrometer.core.stellar import StellarSettings
+        name, value = Controller._session_value(session, StellarSettings)
+        if value is None:
+            return None
+        route = getattr(session, "route", None) or getattr(session.input, "route", None)
+        if route is not None and "absorption" not in str(route).lower():
+            return None
+        return value
+
+    @staticmethod
+    def _default_stellar():
+        from gyrometer.core.stellar import StellarSettings
+        return StellarSettings()
+
+    def _with_routes(self, session):
+        """``session`` carrying the radial settings and the cube route."""
+        from gyrometer.core.radial import RadialSettings
+        from gyrometer.core.stellar import StellarSettings
+        changes = {}
+        name = self._session_value(session, RadialSettings)[0]
+        if name is not None and self.radial_settings is not None:
+            changes[name] = self.radial_settings
+        if self.route == "absorption":
+            name = self._session_value(session, StellarSettings)[0]
+            if name is None:
+                name = next((f.name for f in fields(session)
+                             if f.name in ("stellar", "absorption")), None)
+            if name is not None:
+                changes[name] = self.stellar_settings or self._default_stellar()
+            if "route" in {f.name for f in fields(session)}:
+                changes["route"] = "absorption"
+        return session.with_(**changes) if changes else session
+
+    @property
+    def session_knows_absorption(self) -> bool:
+        """True when core's session schema holds the absorption route (so a
+        saved session re-runs through the slit spectra)."""
+        from gyrometer.core.session import Session
+        names = {f.name for f in fields(Session)}
+        return bool(names & {"stellar", "absorption"})
+
+    # ------------------------------------------------------------------
+    # the absorption-line route (background)
+    # ------------------------------------------------------------------
+    def open_absorption(self, vsys_kms: float | None = None, settings=None) -> bool:
+        """Show the open cube for the absorption-line route.
+
+        The map view shows the cube's mean over all channels (a display
+        only; the continuum that enters ``<X>`` is computed by core when the
+        slits are measured) with the session's geometry, or a starting
+        guess whose systemic velocity is ``vsys_kms`` (optical cz, km/s),
+        and slits. :meth:`run_absorption` then measures.
+        """
+        if self.cube is None:
+            return False
+        cube = self.cube
+        base = self.pending_session or self.session or self._session_for(
+            Path(self.source_path or "cube.fits"), cube)
+        stellar = settings or self.stellar_settings or self._default_stellar()
+
+        def work(progress, cancel):
+            progress(0, 1, "mean image of the cube")
+            return self._absorption_state(base, cube, vsys_kms)
+
+        def done(result):
+            maps, geometry, slits = result
+            self.pending_session = None
+            self.stellar_settings = stellar
+            self._install(base, cube, maps, geometry, slits, (), route="absorption")
+
+        return self._start("Absorption-line cube", work, done)
+
+    @staticmethod
+    def _absorption_state(session, cube, vsys_kms):
+        maps = display_maps(cube)
+        geometry = session.geometry
+        if geometry is None:
+            geometry = Controller._starting_geometry(maps)
+            if vsys_kms is not None:
+                geometry = geometry.with_(vsys_kms=float(vsys_kms))
+        slits = session.slits if session.slits is not None else \
+            Controller._starting_slits(maps)
+        return maps, geometry, slits
+
+    def _open_absorption_session(self, session, stellar, title, after) -> bool:
+        from gyrometer.core import pipeline
+
+        def work(progress, cancel):
+            data, _ = pipeline.load_inputs(session.input, tracer=session.tracer,
+                                           progress=progress, cancel=cancel)
+            return (data,) + self._absorption_state(session, data, None)
+
+        def done(result):
+            data, maps, geometry, slits = result
+            self.stellar_settings = stellar
+            self._install(session, data, maps, geometry, slits, (),
+                          route="absorption")
+            after()
+
+        return self._start(title, work, done)
+
+    def run_absorption(self) -> bool:
+        """Fit the summed spectrum of every slit and measure Omega_p with
+        :func:`gyrometer.core.stellar.measure_absorption` (background)."""
+        if self.cube is None or self.route != "absorption" or self.slits is None:
+            self.status.emit("Open an absorption-line cube first")
+            return False
+        from gyrometer.core import stellar
+        cube, geometry, slits = self.cube, self.geometry, self.slits
+        settings = self.stellar_settings or self._default_stellar()
+        key = self._state_key()
+
+        def work(progress, cancel):
+            return stellar.measure_absorption(cube, geometry, slits, settings,
+                                              warn=False, progress=progress,
+                                              cancel=cancel)
+
+        def done(result):
+            self.absorption = result
+            self._mark_made("absorption", key)
+            self.absorption_changed.emit(result)
+            self._remeasure()
+            if "absorption" in self.stale:
+                self.status.emit("The slit spectra were measured for an older "
+                                 "state; measure again")
+
+        return self._start("Measure from slit spectra", work, done)
+
+    # ------------------------------------------------------------------
+    # pattern speed against radius (background)
+    # ------------------------------------------------------------------
+    def set_radial_settings(self, settings) -> None:
+        """Keep the :class:`~gyrometer.core.radial.RadialSettings` used by
+        :meth:`run_radial` and saved with the session."""
+        if settings != self.radial_settings:
+            self.radial_settings = settings
+            self.autosave.schedule()
+
+    def run_radial(self) -> bool:
+        """Measure Omega_p in annuli with :func:`gyrometer.core.radial.measure_radial`
+        on the current maps, geometry and slits (background)."""
+        if self.maps is None or self.geometry is None or self.slits is None:
+            self.status.emit("Nothing to measure yet")
+            return False
+        from gyrometer.core import radial
+        maps, geometry, slits = self.maps, self.geometry, self.slits
+        settings = self.radial_settings or radial.RadialSettings()
+        seed = self.budget_settings().seed
+        key = self._state_key()
+
+        def work(progress, cancel):
+            return radial.measure_radial(maps, geometry, slits, settings,
+                                         rng=np.random.default_rng(seed),
+                                         progress=progress, cancel=cancel,
+                                         warn=False)
+
+        def done(result):
+            self.radial = result
+            self._mark_made("radial", key)
+            self.radial_changed.emit(result)
+            for note in result.warnings[:2]:
+                self.status.emit(note)
+
+        return self._start("Pattern speed against radius", work, done)
 
     def open_sample(self) -> bool:
         """Open the synthetic sample galaxy LBDP-037 (stellar maps).
@@ -754,14 +1077,20 @@ class Controller(QObject):
         if self.maps is None:
             return False
         from gyrometer.core import pipeline
+        if self.route == "absorption" and not self.session_knows_absorption:
+            self.status.emit("The full run of the absorption route is not "
+                             "available yet; use Measure from slit spectra")
+            return False
         session = self.current_session()
         state = self.edit_state()
+        key = self._state_key()
 
         def work(progress, cancel):
             return pipeline.run_session(session, progress=progress, cancel=cancel)
 
         def done(result):
             self.pipeline_result = result
+            radial_result = getattr(result, "radial", None)
             if self.edit_state() != state:
                 self.status.emit("The full run finished for an older state; "
                                  "run it again")
@@ -773,15 +1102,27 @@ class Controller(QObject):
             self.budget_changed.emit(self.budget)
             self.dynamics_changed.emit(self.dynamics)
             self.checks_changed.emit(result)
+            self._mark_made("full", key)
+            if radial_result is not None:
+                self.radial = radial_result
+                self._mark_made("radial", key)
+                self.radial_changed.emit(radial_result)
             for note in result.warnings[:3]:
                 self.status.emit(note)
 
         return self._start("Full measurement", work, done)
 
-    def export_results(self, folder: str | Path, overwrite: bool = False) -> bool:
+    def export_results(self, folder: str | Path, overwrite: bool = False,
+                       confirm=None) -> bool:
         """Run the pipeline on the current session and write everything the
         command line writes (tables, figures, regions, session) to
-        ``folder`` (background)."""
+        ``folder`` (background).
+
+        Core's export checks every target first; if one exists and
+        ``overwrite`` is false, nothing is written and ``confirm(question)``
+        is asked whether to replace them (then the export runs again with
+        ``overwrite=True``, reusing the computed result).
+        """
         if self.maps is None:
             return False
         from gyrometer.core import pipeline
@@ -797,17 +1138,62 @@ class Controller(QObject):
             result = reuse or pipeline.run_session(session, progress=progress,
                                                    cancel=cancel)
             progress(0, 1, "writing outputs")
-            return result, pipeline.export_result(result, folder,
-                                                  overwrite=overwrite, cancel=cancel)
+            try:
+                return result, pipeline.export_result(result, folder,
+                                                      overwrite=overwrite,
+                                                      cancel=cancel)
+            except OutputError as exc:
+                if overwrite or confirm is None:
+                    raise
+                return result, exc
 
         def done(out):
             result, paths = out
             self.pipeline_result = result
+            if isinstance(paths, OutputError):
+                existing = [p.name for p in pipeline.output_paths(result, folder).values()
+                            if p.exists()]
+                shown = ", ".join(existing[:6]) + (" \u2026" if len(existing) > 6 else "")
+                question = (f"{len(existing)} file(s) in {folder} would be replaced"
+                            f" ({shown}).\n\nReplace them?")
+                if existing and confirm(question):
+                    QTimer.singleShot(0, lambda: self.export_results(
+                        folder, overwrite=True))
+                elif existing:
+                    self.status.emit("Nothing exported; the existing files are unchanged")
+                else:
+                    self._report_error("Export results", paths)
+                return
             self.last_export = paths
             self.settings.set_last_folder(folder)
             self.status.emit(f"Wrote {len(paths)} files to {folder}")
 
         return self._start("Export results", work, done)
+
+def display_maps(cube):
+    """A map set that lets the map view show a cube of the absorption route.
+
+    Its intensity is the mean of each spaxel over all its finite channels
+    (a picture to place slits on; the continuum of the measurement is
+    computed by :func:`gyrometer.core.stellar.measure_absorption`). It has
+    no velocity field (NaN).
+    """
+    from gyrometer.core.dataset import MapSet
+    total = np.zeros(cube.spatial_shape)
+    count = np.zeros(cube.spatial_shape)
+    n = cube.shape[0]
+    for start in range(0, n, 64):  # a memory-mapped cube is read in blocks
+        block = np.asarray(cube.data[start:start + 64], dtype=float)
+        finite = np.isfinite(block)
+        total += np.where(finite, block, 0.0).sum(axis=0)
+        count += finite.sum(axis=0)
+    image = np.full(cube.spatial_shape, np.nan)
+    np.divide(total, count, out=image, where=count > 0)
+    return MapSet(intensity=image, velocity_kms=np.full(cube.spatial_shape, np.nan),
+                  wcs=cube.wcs.celestial, intensity_unit=cube.unit or "",
+                  name=cube.name or "", tracer="stars",
+                  psf_fwhm_arcsec=getattr(cube, "psf_fwhm_arcsec", None))
+
 
 def sample_path() -> Path | None:
     """The sample map set LBDP-037 shipped in ``sample_cubes/``, if present."""

@@ -15,7 +15,9 @@ __all__ = ["MomentDialog", "HelpWindow", "show_about", "help_html"]
 
 
 class MomentDialog(QDialog):
-    """Choose the line, velocity window and mask that turn a cube into maps.
+    """Choose how a cube is measured: through moment maps of an emission
+    line (line, velocity window and mask), or through the summed spectra of
+    the slits for absorption lines (the systemic velocity to start from).
 
     Parameters
     ----------
@@ -40,6 +42,15 @@ class MomentDialog(QDialog):
             + (f"; rest value in header {spec.rest_value:.8g} {spec.rest_unit}"
                if spec.rest_value else "; no rest value in the header"))
         info.setWordWrap(True)
+        self.route_box = QComboBox()
+        self.route_box.addItem("Emission line (moment maps)", "emission")
+        self.route_box.addItem("Absorption lines (slit spectra)", "absorption")
+        self.route_box.setToolTip(
+            "Emission line: reduce the cube to intensity and velocity maps and "
+            "measure live while slits move. Absorption lines (stars): sum the "
+            "spectra in each slit and fit their velocity distributions")
+        if spec.ctype.upper()[:4] not in ("WAVE", "AWAV"):
+            self.route_box.model().item(1).setEnabled(False)
         self.line = QComboBox()
         self.line.addItem("Rest value from the header", "")
         for line in list_lines():
@@ -82,6 +93,7 @@ class MomentDialog(QDialog):
         self.mask.currentIndexChanged.connect(
             lambda _: self.snr.setEnabled(self.mask.currentData() == "smooth"))
         form = QFormLayout()
+        form.addRow("Measure from", self.route_box)
         form.addRow("Line", self.line)
         form.addRow("", self.whole_axis)
         form.addRow("Window centre", self.vsys)
@@ -98,6 +110,32 @@ class MomentDialog(QDialog):
         layout.addLayout(form)
         layout.addWidget(buttons)
         self._previous = previous
+        self._ok = buttons.button(QDialogButtonBox.StandardButton.Ok)
+        self._emission_only = (self.line, self.whole_axis, self.window, self.mask,
+                               self.snr)
+        self.route_box.currentIndexChanged.connect(self._route_chosen)
+
+    def _route_chosen(self, _index: int) -> None:
+        absorption = self.route() == "absorption"
+        for widget in self._emission_only:
+            widget.setEnabled(not absorption)
+        if absorption:
+            self.vsys.setEnabled(True)
+            self.vsys.setToolTip("Systemic velocity of the galaxy (optical cz), "
+                                 "the starting value of the disk geometry")
+            self._ok.setText("Show cube")
+        else:
+            self.vsys.setEnabled(not self.whole_axis.isChecked())
+            self.snr.setEnabled(self.mask.currentData() == "smooth")
+            self._ok.setText("Make maps")
+
+    def route(self) -> str:
+        """``"emission"`` or ``"absorption"``."""
+        return self.route_box.currentData()
+
+    def vsys_kms(self) -> float:
+        """The systemic velocity typed, km/s."""
+        return float(self.vsys.value())
 
     def settings(self):
         """The chosen :class:`gyrometer.core.moments.MomentSettings`."""

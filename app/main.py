@@ -69,6 +69,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     window.show()
     if args.files:
         window.controller.open_path(args.files[0])
+    else:  # unsaved work of a window that crashed or was killed
+        window.offer_recovery()
     return int(app.exec())
 
 

@@ -61,8 +61,29 @@ class MainWindow(QMainWindow):
         self.tabs.addTab(self.result_view, icon("fit"), "Pattern speed")
         self.tabs.addTab(self.dynamics_view, icon("resonance"), "Rotation && resonances")
         from .checksview import QtChecksView
+        from .radialview import QtRadialView
+        from .spectrumview import QtSlitSpectrumView
+        from .staleview import StaleFrame
         self.checks_view = QtChecksView(controller)
-        self.tabs.addTab(self.checks_view, icon("budget"), "Checks")
+        self.radial_view = QtRadialView(controller)
+        self.spectrum_view = QtSlitSpectrumView(controller)
+        rerun = ("From the full run before your last edit of the geometry or the "
+                 "slits; run it again (Ctrl+R) to update.")
+        self.dynamics_frame = StaleFrame(self.dynamics_view, controller, ("full",), rerun)
+        self.checks_frame = StaleFrame(self.checks_view, controller, ("full",), rerun)
+        self.radial_frame = StaleFrame(
+            self.radial_view, controller, ("radial",),
+            "Measured before your last edit of the geometry or the slits; "
+            "measure again to update.")
+        self.spectrum_frame = StaleFrame(
+            self.spectrum_view, controller, ("absorption",),
+            "Fitted before your last edit of the geometry or the slits; "
+            "measure from the slit spectra again to update.")
+        self.tabs.removeTab(1)
+        self.tabs.addTab(self.dynamics_frame, icon("resonance"), "Rotation && resonances")
+        self.tabs.addTab(self.checks_frame, icon("budget"), "Checks")
+        self.tabs.addTab(self.radial_frame, icon("fit"), "Speed against radius")
+        self.tabs.addTab(self.spectrum_frame, icon("fit"), "Slit spectra")
         splitter = QSplitter(Qt.Orientation.Horizontal)
         splitter.addWidget(self.map_view)
         splitter.addWidget(self.tabs)
@@ -177,6 +198,14 @@ class MainWindow(QMainWindow):
                                      "Run the batch pipeline on this session: "
                                      "pattern speed, budget, rotation curve, "
                                      "resonances and bar", "run")
+        self.act_radial = self._action("Pattern speed against &radius",
+                                       self.run_radial, "Ctrl+Shift+R",
+                                       "Solve for the pattern speed in annuli of disk "
+                                       "radius (background)")
+        self.act_absorption = self._action("Measure from slit &spectra",
+                                           self.run_absorption, "Ctrl+Shift+M",
+                                           "Fit the summed spectrum of each slit of an "
+                                           "absorption-line cube (background)")
         self.act_cancel = self._action("&Cancel running work", c.tasks.cancel, "Esc")
         self.act_reset_zoom = self._action("&Whole map", self.reset_zoom, "Ctrl+0",
                                            "Zoom out to the whole map")
@@ -217,7 +246,8 @@ class MainWindow(QMainWindow):
         m.addAction(self.act_reset_zoom)
         self.estimate_menu = bar.addMenu("&Geometry")
         m = bar.addMenu("&Measure")
-        m.addActions([self.act_budget, self.act_full, self.act_cancel])
+        m.addActions([self.act_budget, self.act_full, self.act_radial,
+                      self.act_absorption, self.act_cancel])
         m = bar.addMenu("&Help")
         m.addActions([self.act_help, self.act_about])
 
@@ -242,6 +272,7 @@ class MainWindow(QMainWindow):
         c.cube_opened.connect(self._ask_moments)
         c.recent_changed.connect(self._fill_recent)
         c.data_changed.connect(self._update_enabled)
+        c.route_changed.connect(self._update_enabled)
         c.selection_changed.connect(self._update_enabled)
         c.undo_stack.cleanChanged.connect(self._update_title)
         c.session_changed.connect(self._session_changed)
@@ -274,9 +305,13 @@ class MainWindow(QMainWindow):
     def _update_enabled(self, *_args) -> None:
         has_data = self.controller.maps is not None
         selected = self.controller.selected >= 0
+        absorption = self.controller.route == "absorption"
         for act in (self.act_save, self.act_save_as, self.act_export, self.act_add,
-                    self.act_budget, self.act_full):
+                    self.act_budget, self.act_full, self.act_radial):
             act.setEnabled(has_data)
+        self.act_absorption.setEnabled(has_data and absorption)
+        for act in (self.act_budget, self.act_radial):
+            act.setEnabled(has_data and not absorption)
         for act in [self.act_dup, self.act_remove] + self.nudge_actions:
             act.setEnabled(has_data and selected)
 
@@ -312,7 +347,11 @@ class MainWindow(QMainWindow):
     def _ask_moments(self, cube) -> None:
         dialog = MomentDialog(cube, self.controller.moment_settings, self)
         if dialog.exec():
-            self.controller.compute_moments(dialog.settings())
+            if dialog.route() == "absorption":
+                self.controller.open_absorption(dialog.vsys_kms())
+                self.tabs.setCurrentWidget(self.spectrum_frame)
+            else:
+                self.controller.compute_moments(dialog.settings())
         else:
             self.statusBar().showMessage("Cube opened; no maps made", 8000)
 
@@ -329,34 +368,81 @@ class MainWindow(QMainWindow):
 
     def save_session(self, ask: bool = False) -> None:
         path = self._session_path
+        # Save writes over the session file this window has open (that is
+        # what Save means); Save as never replaces a file without asking.
+        overwrite = not (ask or path is None)
         if ask or path is None:
             start = str(Path(self.controller.settings.last_folder()) /
                         f"{self.controller.galaxy_name() or 'session'}.toml")
-            path, _ = QFileDialog.getSaveFileName(self, "Save session", start,
-                                                  "Sessions (*.toml)")
+            path, _ = QFileDialog.getSaveFileName(
+                self, "Save session", start, "Sessions (*.toml)",
+                options=QFileDialog.Option.DontConfirmOverwrite)
             if not path:
                 return
-        if self.controller.save_session(path, overwrite=True):
+        if self.controller.save_session(path, overwrite=overwrite,
+                                        confirm=self.confirm_replace):
             self._session_path = path
             self.controller.undo_stack.setClean()
+
+    def confirm_replace(self, question: str) -> bool:
+        """Ask before a file the user owns is replaced (Yes replaces)."""
+        answer = QMessageBox.question(
+            self, "Replace files?", question,
+            QMessageBox.StandardButton.Yes | QMessageBox.StandardButton.No,
+            QMessageBox.StandardButton.No)
+        return answer == QMessageBox.StandardButton.Yes
 
     def export_dialog(self) -> None:
         folder = QFileDialog.getExistingDirectory(
             self, "Export results to folder", self.controller.settings.last_folder())
         if not folder:
             return
-        overwrite = False
-        if any(Path(folder).iterdir()):
-            answer = QMessageBox.question(
-                self, "Export results",
-                f"{folder} is not empty. Replace files of the same name?\n"
-                "(No: stop if a file would be replaced; nothing is written then.)",
-                QMessageBox.StandardButton.Yes | QMessageBox.StandardButton.No
-                | QMessageBox.StandardButton.Cancel, QMessageBox.StandardButton.No)
-            if answer == QMessageBox.StandardButton.Cancel:
-                return
-            overwrite = answer == QMessageBox.StandardButton.Yes
-        self.controller.export_results(folder, overwrite=overwrite)
+        # core refuses to replace files; the controller then asks us
+        self.controller.export_results(folder, confirm=lambda q: self.confirm_replace(q))
+
+    # -- measure actions ----------------------------------------------------
+    def run_radial(self) -> None:
+        self.tabs.setCurrentWidget(self.radial_frame)
+        self.radial_view.run()
+
+    def run_absorption(self) -> None:
+        self.tabs.setCurrentWidget(self.spectrum_frame)
+        self.controller.run_absorption()
+
+    # -- crash recovery -----------------------------------------------------
+    def ask_recovery(self, item, others: int) -> str:
+        """Ask what to do with an autosave left by a window that did not
+        close cleanly: ``"restore"``, ``"discard"`` or ``"keep"``."""
+        more = (f"\n\n({others} older unsaved job(s) are also kept; they are "
+                "offered again next time.)" if others else "")
+        box = QMessageBox(QMessageBox.Icon.Question, "Unsaved work found",
+                          "Gyrometer did not close normally last time. Its "
+                          f"last state was kept:\n\n{item.describe()}\n\n"
+                          "Restore it now? (Restoring gives you the geometry and "
+                          f"the slits as they were; save it to keep it.){more}",
+                          parent=self)
+        restore = box.addButton("Restore", QMessageBox.ButtonRole.AcceptRole)
+        discard = box.addButton("Discard", QMessageBox.ButtonRole.DestructiveRole)
+        box.addButton("Not now", QMessageBox.ButtonRole.RejectRole)
+        box.setDefaultButton(restore)
+        box.exec()
+        clicked = box.clickedButton()
+        return "restore" if clicked is restore else "discard" if clicked is discard \
+            else "keep"
+
+    def offer_recovery(self) -> bool:
+        """Offer the newest autosave of a crashed window; True if restoring."""
+        from .autosave import find_recoverable
+        items = find_recoverable(self.controller.settings.autosave_folder())
+        if not items:
+            return False
+        item = items[0]
+        answer = self.ask_recovery(item, len(items) - 1)
+        if answer == "restore":
+            return self.controller.recover(item)
+        if answer == "discard":
+            item.discard()
+        return False
 
     # -- view actions -----------------------------------------------------
     def reset_zoom(self) -> None:
@@ -396,6 +482,7 @@ class MainWindow(QMainWindow):
         if c.tasks.busy:
             c.tasks.cancel()
             c.tasks.wait(10000)
+        c.discard_autosave()  # a clean exit leaves nothing to recover
         super().closeEvent(event)
 
     def restore_layout(self) -> None:

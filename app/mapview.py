@@ -26,6 +26,9 @@ MAP_KINDS = {
     "dispersion": ("dispersion_kms", "Velocity dispersion", "viridis", "km/s"),
     "velocity_err": ("velocity_err_kms", "Velocity uncertainty", "cividis", "km/s"),
     "intensity_err": ("intensity_err", "Intensity uncertainty", "cividis", None),
+    # absorption route: the band-integrated continuum of the pixels the slits
+    # read (AbsorptionResult.continuum_map), available after a measurement
+    "continuum": ("continuum_map", "Continuum in the slits", "inferno", None),
 }
 
 #: Colour-scale stretches: label -> lower/upper percentile.
@@ -65,6 +68,7 @@ class QtMapView(QWidget):
         self.kind = "velocity"
         self._frame: SkyFrame | None = None
         self._maps = None
+        self._continuum = None
 
         self.kind_box = QComboBox()
         self.kind_box.setToolTip("Which map to show under the slits")
@@ -121,22 +125,41 @@ class QtMapView(QWidget):
         controller.selection_changed.connect(self.slit_layer.set_selected)
         controller.measurement_changed.connect(self._measurement_changed)
         controller.dynamics_changed.connect(self._dynamics_changed)
+        controller.absorption_changed.connect(self._absorption_changed)
+
+    def _layer(self, attr: str):
+        """The array shown for a map kind (None if this data has none)."""
+        if attr == "continuum_map":
+            return self._continuum
+        value = getattr(self._maps, attr, None)
+        if value is None or not np.isfinite(value).any():
+            return None
+        return value
+
+    def _absorption_changed(self, result) -> None:
+        self._continuum = None if result is None else np.asarray(result.continuum_map)
+        if self._maps is not None:
+            self._data_changed(self._maps, keep_range=True)
+            if result is not None:
+                self.set_kind("continuum")
 
     # -- controller -> view ------------------------------------------------
-    def _data_changed(self, maps) -> None:
+    def _data_changed(self, maps, keep_range: bool = False) -> None:
+        if maps is not self._maps and not keep_range:
+            self._continuum = None
         self._maps = maps
         self.kind_box.blockSignals(True)
         self.kind_box.clear()
         if maps is not None:
             for key, (attr, label, _, _) in MAP_KINDS.items():
-                if getattr(maps, attr, None) is not None:
+                if self._layer(attr) is not None:
                     self.kind_box.addItem(label, key)
             index = max(self.kind_box.findData(self.kind), 0)
             self.kind_box.setCurrentIndex(index)
             self.kind = self.kind_box.currentData()
         self.kind_box.blockSignals(False)
         self._show_image()
-        if maps is not None:
+        if maps is not None and not keep_range:
             self.readout.setText("Move the cursor over the map for the sky position, "
                                  "pixel and value; drag slits and the geometry handles")
             ny, nx = maps.shape
@@ -158,7 +181,7 @@ class QtMapView(QWidget):
             self.image.clear()
             return
         attr, label, cmap, unit = MAP_KINDS[self.kind]
-        data = np.asarray(getattr(maps, attr), dtype=np.float32)
+        data = np.asarray(self._layer(attr), dtype=np.float32)
         unit = unit or maps.intensity_unit or "arbitrary units"
         geometry = self.controller.geometry
         vsys = geometry.vsys_kms if geometry is not None else None
@@ -235,7 +258,7 @@ class QtMapView(QWidget):
             text += f"   offset E {float(east):+.2f}\u2033 N {float(north):+.2f}\u2033"
         if 0 <= i < ny and 0 <= j < nx:
             attr, label, _, unit = MAP_KINDS[self.kind]
-            value = getattr(maps, attr)[i, j]
+            value = self._layer(attr)[i, j]
             unit = unit or maps.intensity_unit or ""
             text += f"   {label.lower()}: {value:.4g} {unit}"
         return text

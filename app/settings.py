@@ -72,6 +72,11 @@ class AppSettings:
         self._q.setValue(key, value)
         self._q.sync()
 
+    def autosave_folder(self) -> Path:
+        """Where crash-recovery autosaves live (``autosave/`` beside the
+        settings file, so tests and portable installs redirect both)."""
+        return self.folder / "autosave"
+
     def last_folder(self) -> str:
         return str(self._q.value("files/last_folder", str(Path.home())))
 

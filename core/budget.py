@@ -23,7 +23,6 @@ number of worker processes.
 from __future__ import annotations
 
 import math
-import os
 from collections.abc import Sequence
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass

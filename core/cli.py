@@ -205,6 +205,13 @@ def format_summary(result, paths: dict | None = None,
             share = "" if t.name == "all combined" else f"{100 * t.share:5.0f}%"
             lines.append(f"    {t.name:<16}{t.n_draws:>6}{t.median:>10.4f}"
                          f"{t.p16:>10.4f}{t.p84:>10.4f}{t.sigma:>9.4f}{share:>7}")
+    if result.absorption is not None:
+        fits = result.absorption.slit_fits
+        ok = sum(1 for f in fits if not f.message)
+        lines.append(f"  slit spectra    {ok} of {len(fits)} fitted; template: "
+                     f"{result.absorption.template.origin}")
+    if result.radial is not None:
+        lines.extend(_radial_lines(result.radial))
     if result.warnings:
         shown = result.warnings if verbose else result.warnings[:6]
         lines.append("  notes:")
@@ -219,6 +226,27 @@ def format_summary(result, paths: dict | None = None,
         for i in range(0, len(names), 4):
             lines.append("    " + "  ".join(names[i:i + 4]))
     return "\n".join(lines)
+
+
+def _radial_lines(radial) -> list[str]:
+    """Per-annulus lines of Omega_p(R) for the summary."""
+    kpc = radial.omega_kms_kpc is not None
+    unit = "km/s/kpc" if kpc else "km/s/arcsec"
+    edges = radial.edges_kpc if kpc else radial.edges_arcsec
+    om = radial.omega_kms_kpc if kpc else radial.omega_kms_arcsec
+    err = radial.omega_err_kms_kpc if kpc else radial.omega_err_kms_arcsec
+    r_unit = "kpc" if kpc else "arcsec"
+    lines = [f"  Omega_p(R)      {radial.n_annuli} annuli, "
+             f"{radial.regularisation}, lam = {radial.lam:.3g} "
+             f"({radial.lam_method}); errors: {radial.error_method}",
+             f"    {'R (' + r_unit + ')':<18}{'Omega_p (' + unit + ')':<28}"
+             "resolution"]
+    for j in range(radial.n_annuli):
+        weak = "" if radial.constrained[j] else "  (set by the smoothing)"
+        lines.append(f"    {edges[j]:7.2f} - {edges[j + 1]:<7.2f}  "
+                     f"{_pm(float(om[j]), float(err[j])):<28}"
+                     f"{radial.resolution[j]:.2f}{weak}")
+    return lines
 
 
 # -- helpers ------------------------------------------------------------------------

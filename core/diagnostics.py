@@ -13,7 +13,6 @@
 from __future__ import annotations
 
 import warnings
-from collections.abc import Sequence
 
 import numpy as np
 

@@ -33,6 +33,7 @@ __all__ = [
     "convergence_figure",
     "pa_figure",
     "rotation_figure",
+    "radial_figure",
     "save_figure",
     "FIGURES",
 ]
@@ -398,6 +399,79 @@ def rotation_figure(curve_fit, *, omega_p=None, resonances=None,
     return _finish(fig)
 
 
+# -- pattern speed against radius ---------------------------------------------------
+def radial_figure(radial, *, curve_fit=None, omega_p=None, title: str = ""):
+    """Pattern speed against radius over the frequency curves.
+
+    The annulus values of the radial Tremaine-Weinberg method (Merrifield,
+    Rand & Meidt 2006, MNRAS 366, L17) as a step curve with its 1-sigma
+    band (:func:`gyrometer.core.radial.omega_curve`); annuli fixed mainly
+    by the regulariser (resolution < 0.5) are drawn hatched. With a smooth
+    rotation-curve model, ``Omega`` and ``Omega -+ kappa/2`` are drawn
+    (Binney & Tremaine 2008, section 3.3.3): where a pattern speed crosses
+    ``Omega`` is its corotation. Radii in kpc and frequencies in km/s/kpc
+    when the distance is known.
+
+    Parameters
+    ----------
+    radial : RadialResult
+    curve_fit : CurveFit, optional
+        Smooth rotation-curve model (``v``, ``dvdr`` in km/s, km/s/arcsec).
+    omega_p : tuple of float, optional
+        ``(p16, median, p84)`` of the single pattern speed, km/s/arcsec,
+        drawn as a horizontal band for comparison.
+    """
+    from .frequencies import frequency_curves
+    from .geometry import kpc_per_arcsec
+    from .radial import omega_curve
+
+    distance = radial.geometry.distance_mpc
+    r, om, lo, hi = omega_curve(radial)
+    r = np.asarray(r.value)
+    om, lo, hi = (np.asarray(q.value) for q in (om, lo, hi))
+    scale = 1.0 if distance is None else kpc_per_arcsec(distance)
+    factor, om_unit = _omega_unit(distance)
+    r_unit = "arcsec" if distance is None else "kpc"
+    with _style():
+        fig = _new_figure(_COLUMN_IN, 2.9)
+        ax = fig.add_subplot(1, 1, 1)
+        edges = np.asarray(radial.edges_arcsec) * scale
+        r_max = float(edges[-1])
+        if curve_fit is not None:
+            grid = np.linspace(max(edges[-1] * 1e-3, 1e-3), edges[-1],
+                               400) / scale
+            freq = frequency_curves(curve_fit, grid, distance_mpc=distance,
+                                    ms=(2,))
+            ax.plot(grid * scale, freq.omega, color="k", label=r"$\Omega$")
+            low, high = freq.lindblad[2]
+            ax.plot(grid * scale, low, color=_COLOURS[1],
+                    label=r"$\Omega\pm\kappa/2$")
+            ax.plot(grid * scale, high, color=_COLOURS[1])
+        if omega_p is not None:
+            p16, med, p84 = (v * factor for v in omega_p)
+            ax.axhspan(p16, p84, color="0.85", linewidth=0)
+            ax.axhline(med, color="0.5", linewidth=0.8, linestyle="--",
+                       label=r"single $\Omega_p$")
+        ax.fill_between(r, lo, hi, color=_COLOURS[0], alpha=0.3, linewidth=0)
+        ax.plot(r, om, color=_COLOURS[0], drawstyle="default",
+                label=r"$\Omega_p(R)$")
+        weak = ~np.asarray(radial.constrained, dtype=bool)
+        for j in np.flatnonzero(weak):
+            ax.axvspan(edges[j], edges[j + 1], facecolor="none",
+                       edgecolor="0.7", hatch="///", linewidth=0)
+        finite = np.isfinite(hi)
+        top = max(float(np.max(hi[finite])) if finite.any() else 1.0, 1e-9)
+        ax.set_ylim(min(0.0, float(np.min(lo[finite])) if finite.any()
+                        else 0.0), 2.0 * top)
+        ax.set_xlim(0.0, r_max)
+        ax.set_xlabel(f"$R$ ({r_unit})")
+        ax.set_ylabel(rf"frequency ({om_unit})")
+        ax.legend(loc="upper right")
+        if title:
+            ax.set_title(title)
+    return _finish(fig)
+
+
 # -- saving -----------------------------------------------------------------------
 _FORMATS = {".png": "png", ".pdf": "pdf", ".svg": "svg"}
 
@@ -462,7 +536,17 @@ def _rotation_of(result):
                            title=result.name)
 
 
+def _radial_of(result):
+    om = None
+    if result.budget is not None:
+        c = result.budget.combined
+        om = (c.p16, c.median, c.p84)
+    return radial_figure(result.radial, curve_fit=result.curve_fit,
+                         omega_p=om, title=result.name)
+
+
 #: Figure kind -> function of a :class:`~gyrometer.core.pipeline.PipelineResult`.
 FIGURES: dict[str, Callable] = {"map": _map_of, "fit": _fit_of,
                                 "convergence": _convergence_of,
-                                "pa": _pa_of, "rotation": _rotation_of}
+                                "pa": _pa_of, "rotation": _rotation_of,
+                                "radial": _radial_of}

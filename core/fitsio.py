@@ -160,6 +160,7 @@ def _open(path: Path) -> fits.HDUList:
                              lazy_load_hdus=False,
                              do_not_scale_image_data=True)
     except Exception as exc:  # astropy raises OSError, ValueError, ...
+        _close_leaked(exc)
         raise InputFileError(f"not a readable FITS file ({exc})",
                              path=str(path)) from exc
     size = path.stat().st_size
@@ -184,6 +185,24 @@ def _open(path: Path) -> fits.HDUList:
                 f"file has {size}", path=str(path), hdu=index,
                 hint="the download or copy was incomplete")
     return hdul
+
+
+def _close_leaked(exc: BaseException) -> None:
+    """Close the file astropy leaves open when :func:`fits.open` fails part
+    way (the half-built HDU list sits in the frames of the traceback);
+    otherwise it is closed only by the garbage collector, with a
+    ResourceWarning."""
+    from astropy.io.fits.file import _File
+
+    tb = exc.__traceback__
+    while tb is not None:
+        for value in list(tb.tb_frame.f_locals.values()):
+            if isinstance(value, (fits.HDUList, _File)):
+                try:
+                    value.close()
+                except Exception:  # noqa: BLE001 - best effort only
+                    pass
+        tb = tb.tb_next
 
 
 def _raw_nbytes(header: fits.Header) -> int:

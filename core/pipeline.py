@@ -16,6 +16,24 @@ runs every step in order, each step a call into the science modules:
 9. resonance radii with Monte Carlo errors (:mod:`~gyrometer.core.resonances`);
 10. the bar length and R = R_CR / R_bar (:mod:`~gyrometer.core.bars`).
 
+Two optional routes ride on the same steps:
+
+* ``[radial] enabled = true``: the pattern speed against radius
+  (:func:`gyrometer.core.radial.measure_radial`, Merrifield, Rand & Meidt
+  2006; Meidt et al. 2008) with the same slits, on the maps (the moment
+  maps for a cube); :attr:`PipelineResult.radial`.
+* ``[input] kind = "absorption"``: slit spectra of an absorption-line cube
+  (:func:`gyrometer.core.stellar.measure_absorption`);
+  :attr:`PipelineResult.absorption`. Its maps are the continuum image of
+  the cube (no velocity map), so the geometry must be given, the
+  convergence and PA panels and a derived rotation curve are not made, and
+  the uncertainty budget is :func:`absorption_budget`.
+
+When the rotation curve is derived with tilted rings, the rings inside the
+bar (deprojected bar semi-length, given or estimated) are flagged before the
+smooth model is fitted: inside a bar the tracer's rotation speed is not the
+circular speed (DOMAIN notes section 3; Spekkens & Sellwood 2007).
+
 The result is a frozen :class:`PipelineResult`; :func:`export_result` writes
 its tables, figures, region file and session file. A run is deterministic
 for a given session: every random draw descends from the session's seed
@@ -59,10 +77,16 @@ __all__ = [
     "resolve_slits",
     "auto_slits",
     "shifted_budget",
+    "continuum_maps",
+    "absorption_budget",
     "run_session",
     "result_row",
     "result_details",
     "results_table",
+    "radial_details",
+    "absorption_details",
+    "radial_results_table",
+    "write_radial_table",
     "output_paths",
     "export_result",
 ]
@@ -70,7 +94,7 @@ __all__ = [
 #: Stage names reported to ``progress`` (in order).
 STAGES = ("loading data", "moment maps", "geometry", "slits",
           "pattern speed", "uncertainty budget", "diagnostics",
-          "rotation curve", "resonances", "bar")
+          "radial pattern speeds", "rotation curve", "resonances", "bar")
 
 #: Position-angle offsets of the sensitivity panel, degrees (DOMAIN notes
 #: section 7: show Omega_p over PA +- 10 deg).
@@ -122,6 +146,14 @@ class PipelineResult:
         The paper-table row of this galaxy.
     warnings : tuple of str
         Everything the user should read, in plain words.
+    radial : RadialResult or None
+        Pattern speed against radius (``[radial] enabled``), see
+        :class:`gyrometer.core.radial.RadialResult`.
+    absorption : AbsorptionResult or None
+        The absorption-line route's full result (per-slit spectra and fits,
+        template, noise draws), see
+        :class:`gyrometer.core.stellar.AbsorptionResult`;
+        ``measurement`` is its ``measurement``.
     """
 
     session: Session
@@ -137,6 +169,8 @@ class PipelineResult:
     bar: BarSummary
     row: ResultRow
     warnings: tuple[str, ...] = ()
+    radial: Any = None
+    absorption: Any = None
 
     @property
     def name(self) -> str:
@@ -185,7 +219,7 @@ def load_inputs(spec: InputSpec, *, tracer: str | None = None,
     from .fitsio import file_sha256, load_cube, load_mapset
 
     files = spec.files()
-    if spec.kind == "cube":
+    if spec.kind in ("cube", "absorption"):
         data = load_cube(files["cube"], progress=progress, cancel=cancel)
     else:
         data = load_mapset(files.get("maps"),
@@ -219,11 +253,16 @@ def load_inputs(spec: InputSpec, *, tracer: str | None = None,
 def maps_for(data, session: Session, vsys_kms: float | None = None, *,
              progress: ProgressCallback | None = None,
              cancel: CancelFlag | None = None):
-    """The MapSet of the data: itself, or the moment maps of a cube."""
+    """The MapSet of the data: itself, the moment maps of a cube, or the
+    continuum image of an absorption-line cube (:func:`continuum_maps`)."""
     from .dataset import Cube
 
     if not isinstance(data, Cube):
         return data
+    if session.input.kind == "absorption":
+        return continuum_maps(data, session.absorption.stellar,
+                              tracer=session.tracer, progress=progress,
+                              cancel=cancel)
     from .moments import compute_moments
 
     settings = session.moments
@@ -232,6 +271,65 @@ def maps_for(data, session: Session, vsys_kms: float | None = None, *,
     if settings.tracer is None and session.tracer:
         settings = settings.replace(tracer=session.tracer)
     return compute_moments(data, settings, progress=progress, cancel=cancel)
+
+
+def continuum_maps(cube, stellar, *, tracer: str = "stars",
+                   progress: ProgressCallback | None = None,
+                   cancel: CancelFlag | None = None):
+    """Continuum image of an absorption-line cube, as a MapSet.
+
+    The intensity is the sum of the channels in the continuum band (or
+    the fit window, or the whole cube less 1 % at each end, as
+    :func:`gyrometer.core.stellar.measure_absorption` chooses) times the
+    channel width, i.e. intensity unit x Angstrom; its error comes from the
+    variance. A spaxel with a NaN in any channel of the band is NaN. The
+    velocity map is all NaN: this route has none. Used for the slits, the
+    bar length and the map figure.
+    """
+    import astropy.units as u
+
+    from .dataset import MapSet
+
+    axis = cube.spectral
+    try:
+        wave = (np.asarray(axis.values, float)
+                * u.Unit(axis.unit or "Angstrom")).to_value(u.AA)
+    except (ValueError, u.UnitsError) as exc:
+        raise GeometryError("the absorption route needs a wavelength axis",
+                            path=cube.provenance.path or None,
+                            keyword="CUNIT3", value=axis.unit) from exc
+    lo, hi = float(np.min(wave)), float(np.max(wave))
+    band = (stellar.continuum_band_A or stellar.fit_window_A
+            or (lo + 0.01 * (hi - lo), hi - 0.01 * (hi - lo)))
+    chans = np.flatnonzero((wave >= band[0]) & (wave <= band[1]))
+    if chans.size == 0:
+        from .errors import DataContentError
+        raise DataContentError("the continuum band lies outside the cube",
+                               path=cube.provenance.path or None,
+                               keyword="continuum_band_A", value=band,
+                               hint=f"the cube covers {lo:.1f}-{hi:.1f} Angstrom")
+    width = np.abs(np.gradient(wave))
+    ny, nx = cube.spatial_shape
+    total = np.zeros((ny, nx))
+    var = None if cube.variance is None else np.zeros((ny, nx))
+    step = 128
+    for k0 in range(0, chans.size, step):
+        check_cancel(cancel, "continuum image")
+        idx = chans[k0:k0 + step]
+        w = width[idx][:, None, None]
+        total += np.sum(np.asarray(cube.data[idx], float) * w, axis=0)
+        if var is not None:
+            var += np.sum(np.asarray(cube.variance[idx], float) * w ** 2, axis=0)
+        report(progress, min(k0 + step, chans.size), chans.size,
+               "continuum image")
+    return MapSet(intensity=total, velocity_kms=np.full((ny, nx), np.nan),
+                  wcs=cube.wcs.celestial,
+                  intensity_err=None if var is None else np.sqrt(
+                      np.clip(var, 0.0, None)),
+                  intensity_unit=f"({cube.unit}) Angstrom" if cube.unit else "",
+                  name=cube.name, tracer=tracer,
+                  psf_fwhm_arcsec=cube.psf_fwhm_arcsec,
+                  provenance=(cube.provenance,))
 
 
 def cube_velocities(cube, session: Session) -> np.ndarray:
@@ -314,7 +412,10 @@ def auto_slits(maps, geometry: DiskGeometry, rule) -> SlitSet:
     width = rule.width_arcsec or spacing
     grid = sky_grid(maps.wcs, maps.shape, geometry.ra_deg, geometry.dec_deg)
     X, Y = sky_to_lon(grid.east_arcsec, grid.north_arcsec, geometry.pa_deg)
-    ok = np.isfinite(maps.intensity) & np.isfinite(maps.velocity_kms)
+    ok = np.isfinite(maps.intensity)
+    velocity_ok = np.isfinite(maps.velocity_kms)
+    if velocity_ok.any():  # the continuum maps of the absorption route have none
+        ok &= velocity_ok
     if not ok.any():
         raise GeometryError("no valid pixel in the maps to place slits on")
     count = rule.count
@@ -356,9 +457,14 @@ def resolve_slits(session: Session, maps, geometry: DiskGeometry) -> SlitSet:
 
 
 def _rotation(session: Session, maps, geometry: DiskGeometry, progress,
-              cancel, notes: list[str]):
+              cancel, notes: list[str], bar_length_arcsec: float | None = None):
     rc = session.rotation
     if rc.source == "none":
+        return None, None
+    if rc.source == "derived" and maps is not None and not np.isfinite(
+            np.asarray(maps.velocity_kms)).any():
+        notes.append("no rotation curve: there is no velocity map to derive "
+                     "it from (give [rotation_curve] source = 'file')")
         return None, None
     from .rcmodels import choose_model, fit_curve_models
     if rc.source == "file":
@@ -376,19 +482,52 @@ def _rotation(session: Session, maps, geometry: DiskGeometry, progress,
                          "(too few pixels or partly outside the field)")
         notes.extend(f"rotation curve: {n}" for n in rings.notes
                      if "skipped" not in n)
+        if bar_length_arcsec:
+            curve = _flag_bar_zone(curve, bar_length_arcsec, notes)
     models = None if rc.model == "best" else (rc.model,)
     fits = (fit_curve_models(curve) if models is None
             else fit_curve_models(curve, models=models))
     return curve, choose_model(fits, "bic" if rc.model == "best" else rc.model)
 
 
-def _bar(session: Session, maps, geometry: DiskGeometry, resonances,
-         rng: np.random.Generator, notes: list[str]) -> BarSummary:
-    from .bars import estimate_bar_length, rotation_rate, user_bar_length
+def _flag_bar_zone(curve, bar_length_arcsec: float, notes: list[str]):
+    """Flag tilted-ring points inside the bar before a model is fitted.
+
+    Inside a bar the tracer streams along the bar and its mean rotation is
+    not the circular speed (DOMAIN notes section 3; Spekkens & Sellwood
+    2007, ApJ 664, 204), so those rings are kept for display but left out
+    of the smooth model (:func:`gyrometer.core.rcmodels.fit_curve_models`
+    skips flagged points). Nothing is flagged when fewer than three rings
+    would remain.
+    """
+    inside = np.asarray(curve.r_arcsec) <= bar_length_arcsec
+    flags = np.asarray(curve.flagged, dtype=bool) | inside
+    if not inside.any():
+        return curve
+    if np.count_nonzero(~flags) < 3:
+        notes.append("rotation curve: the rings inside the bar were NOT "
+                     "flagged (fewer than 3 rings would remain outside it); "
+                     "the model uses rings where the rotation is not the "
+                     "circular speed")
+        return curve
+    reason = ", ".join(r for r in (curve.flag_reason,
+                                   f"inside the bar (R <= {bar_length_arcsec:.1f}"
+                                   " arcsec): rotation is not circular")
+                       if r)
+    notes.append(f"rotation curve: {int(inside.sum())} ring(s) inside the bar "
+                 f"(R <= {bar_length_arcsec:.1f} arcsec) flagged and left out "
+                 "of the model fit")
+    return curve.with_flags(flags, reason)
+
+
+def _bar_length(session: Session, maps, geometry: DiskGeometry,
+                notes: list[str]):
+    """The deprojected bar length (BarLength), or ``(None, reason)``."""
+    from .bars import estimate_bar_length, user_bar_length
 
     bar = session.bar
     if bar.length_arcsec == 0:
-        return BarSummary(note="no bar length given")
+        return None, "no bar length given"
     try:
         if bar.length_arcsec is None:
             length = estimate_bar_length(maps, geometry)
@@ -401,7 +540,16 @@ def _bar(session: Session, maps, geometry: DiskGeometry, resonances,
                                      geometry=geometry)
     except (FitError, GeometryError) as exc:
         notes.append(f"bar length: {exc}")
-        return BarSummary(note=str(exc))
+        return None, str(exc)
+    return length, ""
+
+
+def _bar(length, reason: str, resonances, rng: np.random.Generator,
+         notes: list[str]) -> BarSummary:
+    from .bars import rotation_rate
+
+    if length is None:
+        return BarSummary(note=reason)
     if resonances is None or "CR" not in resonances.draws_arcsec:
         return BarSummary(length, None, "no corotation radius (no rotation "
                                         "curve), so no R")
@@ -505,8 +653,142 @@ def shifted_budget(budget, shift_kms_arcsec: float):
 
 
 def _seeds(seed: int) -> list[np.random.SeedSequence]:
-    # children: 0 resonances, 1 bar rate, 2 distance draws
-    return np.random.SeedSequence([int(seed), 0x6779726F]).spawn(3)
+    # children: 0 resonances, 1 bar rate, 2 distance draws, 3 radial Monte
+    # Carlo, 4 absorption route (noise draws, budget). SeedSequence children
+    # are keyed by their index, so adding children keeps the first three.
+    return np.random.SeedSequence([int(seed), 0x6779726F]).spawn(5)
+
+
+def _term(name: str, draws) -> Any:
+    from .results import BudgetTerm
+
+    d = np.asarray(draws, dtype=float)
+    d = d[np.isfinite(d)]
+    if d.size < 2:
+        raise FitError(f"the '{name}' term gave fewer than two valid draws",
+                       hint="check the slits and the uncertainties")
+    p16, med, p84 = np.percentile(d, [16, 50, 84])
+    return BudgetTerm(name, int(d.size), float(p16), float(med), float(p84),
+                      float(0.5 * (p84 - p16)), float("nan"))
+
+
+def absorption_budget(cube, geometry: DiskGeometry, slits: SlitSet, absorption,
+                      session: Session, seed_seq: np.random.SeedSequence, *,
+                      notes: list[str] | None = None,
+                      progress: ProgressCallback | None = None,
+                      cancel: CancelFlag | None = None):
+    """Uncertainty budget of the absorption-line route.
+
+    Terms (switched by the session's ``[uncertainty] terms``):
+
+    * ``"noise"``: the noise Monte Carlo of the slit spectra,
+      :attr:`AbsorptionResult.omega_p_draws_kms_arcsec` (every draw refits
+      all slits and the line; Aguerri et al. 2015 practice);
+    * ``"slit bootstrap"``: slits resampled with replacement, York fit of
+      the nominal ``<X>``, ``<V>`` with their errors (common practice);
+    * ``"position angle"``, ``"centre"``: the whole measurement *redone*
+      ``[stellar] geometry_draws`` times with the PA, respectively the
+      centre (east and north, each with sigma ``center_err_arcsec``), drawn
+      from their errors, the template held fixed and no noise draws;
+    * ``"inclination"``: ``Omega_p = slope / sin i`` with ``i`` drawn
+      (no refit needed);
+    * ``"all combined"``: ``n_draws`` sums of the nominal value and one
+      deviation from its median drawn (with replacement) from each term.
+      The terms are not sampled jointly here, so this assumes their effects
+      add; with few geometry draws their tails are coarse.
+    """
+    from dataclasses import replace as _replace
+
+    from .results import BudgetTerm, UncertaintyBudget
+    from .stellar import measure_absorption
+    from .yorkfit import york_slopes
+
+    b = session.budget
+    n = int(b.n_draws)
+    m = absorption.measurement
+    nominal = float(m.omega_p_kms_arcsec)
+    rng_boot, rng_geo, rng_inc, rng_comb = (
+        np.random.default_rng(c) for c in seed_seq.spawn(4))
+    notes = notes if notes is not None else []
+    draws: dict[str, np.ndarray] = {}
+    if b.noise:
+        noise = np.asarray(absorption.omega_p_draws_kms_arcsec, float)
+        if np.count_nonzero(np.isfinite(noise)) >= 2:
+            draws["noise"] = noise
+        else:
+            notes.append("absorption budget: no noise term ([stellar] n_mc "
+                         "= 0 or the draws failed)")
+    used = np.flatnonzero(m.used)
+    ig = m.integrals
+    if b.bootstrap and used.size >= 3:
+        pick = used[rng_boot.integers(0, used.size, size=(n, used.size))]
+        with np.errstate(all="ignore"):
+            slopes = york_slopes(ig.x_mean_arcsec[pick], ig.v_mean_kms[pick],
+                                 ig.x_err_arcsec[pick], ig.v_err_kms[pick])
+        draws["slit bootstrap"] = np.asarray(slopes, float) / geometry.sin_i
+    k_geo = int(session.absorption.geometry_draws)
+    pa_err = b.pa_err_deg if b.pa_err_deg is not None else geometry.pa_err_deg
+    c_err = (b.center_err_arcsec if b.center_err_arcsec is not None
+             else geometry.center_err_arcsec)
+    i_err = b.inc_err_deg if b.inc_err_deg is not None else geometry.inc_err_deg
+    redo = []
+    if b.position_angle and pa_err > 0 and k_geo >= 2:
+        redo.append("position angle")
+    if b.centre and c_err > 0 and k_geo >= 2:
+        redo.append("centre")
+    quiet = _replace(absorption.settings, n_mc=0)
+    total = len(redo) * k_geo
+    done = 0
+    for name in redo:
+        values = np.full(k_geo, np.nan)
+        for j in range(k_geo):
+            check_cancel(cancel, "uncertainty budget")
+            if name == "position angle":
+                g = geometry.with_(pa_deg=geometry.pa_deg
+                                   + pa_err * rng_geo.standard_normal())
+            else:
+                de, dn = c_err * rng_geo.standard_normal(2)
+                cos_d = math.cos(math.radians(geometry.dec_deg))
+                g = geometry.with_(ra_deg=geometry.ra_deg + de / 3600.0 / cos_d,
+                                   dec_deg=geometry.dec_deg + dn / 3600.0)
+            try:
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore")
+                    r = measure_absorption(cube, g, slits, quiet,
+                                           template=absorption.template,
+                                           warn=False)
+                values[j] = r.measurement.omega_p_kms_arcsec
+            except (FitError, GeometryError) as exc:
+                notes.append(f"absorption budget: a {name} draw failed ({exc})")
+            done += 1
+            report(progress, done, total, f"geometry re-measurements ({name})")
+        draws[name] = values
+    if b.inclination and i_err > 0:
+        inc = geometry.inc_deg + i_err * rng_inc.standard_normal(n)
+        sin_i = np.sin(np.radians(np.clip(inc, 1.0, 89.0)))
+        draws["inclination"] = m.fit.slope / sin_i
+    if not draws:
+        return None
+    terms = [_term(name, d) for name, d in draws.items()]
+    combined = np.full(n, nominal)
+    for t, d in zip(terms, draws.values()):
+        d = np.asarray(d, float)
+        d = d[np.isfinite(d)]
+        combined += rng_comb.choice(d, size=n, replace=True) - t.median
+    total_var = sum(t.sigma ** 2 for t in terms)
+    terms = [BudgetTerm(t.name, t.n_draws, t.p16, t.median, t.p84, t.sigma,
+                        t.sigma ** 2 / total_var if total_var > 0 else 0.0)
+             for t in terms]
+    all_term = _term("all combined", combined)
+    terms.append(BudgetTerm(all_term.name, all_term.n_draws, all_term.p16,
+                            all_term.median, all_term.p84, all_term.sigma, 1.0))
+    sampled = ", ".join(f"{t.name} ({t.n_draws} draws)" for t in terms[:-1])
+    notes.append("absorption route: uncertainty terms sampled: " + sampled
+                 + "; position angle and centre by re-measuring the slit "
+                 "spectra, combined by adding one deviation of each term per "
+                 "draw (terms assumed independent)")
+    return UncertaintyBudget(tuple(terms), combined, int(b.seed),
+                             geometry.distance_mpc)
 
 
 def run_session(session: Session, *, progress: ProgressCallback | None = None,
@@ -550,48 +832,75 @@ def run_session(session: Session, *, progress: ProgressCallback | None = None,
     stages.start("slits")
     slits = resolve_slits(session, maps, geometry)
     p = stages.start("pattern speed")
-    cube_args = {}
-    if session.input.kind == "cube":
-        half = session.moments.window_halfwidth_kms
-        cube_args = dict(window_kms=(-half, half),
-                         velocities_kms=cube_velocities(data, session))
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # kept in measurement.warnings
-        measurement = measure(data, geometry, slits, symmetric=slits.symmetric,
-                              tracer=session.tracer, warn=False,
-                              progress=p, cancel=cancel, **cube_args)
+    seeds = _seeds(session.budget.seed)
+    kind = session.input.kind
+    absorption = None
+    if kind == "absorption":
+        absorption = _measure_absorption(data, geometry, slits, session,
+                                         seeds[4], p, cancel)
+        measurement = absorption.measurement
+    else:
+        cube_args = {}
+        if kind == "cube":
+            half = session.moments.window_halfwidth_kms
+            cube_args = dict(window_kms=(-half, half),
+                             velocities_kms=cube_velocities(data, session))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # kept in measurement.warnings
+            measurement = measure(data, geometry, slits,
+                                  symmetric=slits.symmetric,
+                                  tracer=session.tracer, warn=False,
+                                  progress=p, cancel=cancel, **cube_args)
     notes.extend(measurement.warnings)
     p = stages.start("uncertainty budget")
-    if session.input.kind == "cube":
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            nominal = measure(maps, geometry, slits, symmetric=slits.symmetric,
-                              tracer=session.tracer, warn=False)
+    if kind == "absorption":
+        budget = absorption_budget(data, geometry, slits, absorption, session,
+                                   seeds[4].spawn(2)[1], notes=notes,
+                                   progress=p, cancel=cancel)
     else:
-        nominal = measurement
-    budget = run_budget(maps, geometry, slits, session.budget,
-                        symmetric=slits.symmetric, measurement=nominal,
-                        progress=p, cancel=cancel)
-    if session.input.kind == "cube":
-        shift = (measurement.omega_p_kms_arcsec - nominal.omega_p_kms_arcsec)
-        budget = shifted_budget(budget, shift)
-        notes.append("cube route: the uncertainty budget was sampled on the "
-                     f"moment maps and shifted by {shift:+.4f} km/s/arcsec to "
-                     "the measurement on the cube")
+        if kind == "cube":
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                nominal = measure(maps, geometry, slits,
+                                  symmetric=slits.symmetric,
+                                  tracer=session.tracer, warn=False)
+        else:
+            nominal = measurement
+        budget = run_budget(maps, geometry, slits, session.budget,
+                            symmetric=slits.symmetric, measurement=nominal,
+                            progress=p, cancel=cancel)
+        if kind == "cube":
+            shift = (measurement.omega_p_kms_arcsec
+                     - nominal.omega_p_kms_arcsec)
+            budget = shifted_budget(budget, shift)
+            notes.append("cube route: the uncertainty budget was sampled on "
+                         f"the moment maps and shifted by {shift:+.4f} "
+                         "km/s/arcsec to the measurement on the cube")
     p = stages.start("diagnostics")
-    conv, pa_sens = _diagnostics(maps, geometry, slits, notes, p, cancel)
+    if kind == "absorption":
+        conv = pa_sens = None
+        notes.append("absorption route: no convergence or PA-sensitivity "
+                      "curves (they need a velocity map; the PA term of the "
+                      "budget re-measures the spectra instead)")
+    else:
+        conv, pa_sens = _diagnostics(maps, geometry, slits, notes, p, cancel)
+    p = stages.start("radial pattern speeds")
+    radial = _radial(session, maps, geometry, slits, seeds[3], notes, p,
+                     cancel)
     p = stages.start("rotation curve")
+    length, length_note = _bar_length(session, maps, geometry, notes)
     try:
-        curve, curve_fit = _rotation(session, maps, geometry, p, cancel, notes)
+        curve, curve_fit = _rotation(
+            session, maps, geometry, p, cancel, notes,
+            bar_length_arcsec=None if length is None else length.length_arcsec)
     except (RotationCurveError, FitError) as exc:
         if session.rotation.source == "file":
             raise
         notes.append(f"no rotation curve: {exc}")
         curve = curve_fit = None
-    seeds = _seeds(session.budget.seed)
     p = stages.start("resonances")
     resonances = None
-    if curve_fit is not None:
+    if curve_fit is not None and budget is not None:
         from .resonances import resonance_budget
         resonances = resonance_budget(
             curve_fit, budget, rng=np.random.default_rng(seeds[0]),
@@ -599,7 +908,7 @@ def run_session(session: Session, *, progress: ProgressCallback | None = None,
             distance_mpc=geometry.distance_mpc, progress=p, cancel=cancel)
         notes.extend(n for n in resonances.notes if "approximate" in n)
     stages.start("bar")
-    bar = _bar(session, maps, geometry, resonances,
+    bar = _bar(length, length_note, resonances,
                np.random.default_rng(seeds[1]), notes)
     name = session.name or getattr(maps, "name", "") or getattr(data, "name", "")
     resolved = session.with_(
@@ -610,7 +919,53 @@ def run_session(session: Session, *, progress: ProgressCallback | None = None,
     stages.finish()
     return PipelineResult(resolved, data, maps, measurement, budget, conv,
                           pa_sens, curve, curve_fit, resonances, bar, row,
-                          tuple(dict.fromkeys(notes)))
+                          tuple(dict.fromkeys(notes)), radial=radial,
+                          absorption=absorption)
+
+
+def _measure_absorption(cube, geometry: DiskGeometry, slits: SlitSet,
+                        session: Session, seed_seq: np.random.SeedSequence,
+                        progress, cancel):
+    """Slit spectra of an absorption-line cube (the session's seed drives
+    the noise draws; ``[stellar]`` holds the other settings)."""
+    from .stellar import measure_absorption
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # kept in measurement.warnings
+        return measure_absorption(
+            cube, geometry, slits, session.absorption.stellar,
+            rng=np.random.default_rng(seed_seq.spawn(2)[0]),
+            symmetric=slits.symmetric, warn=False, progress=progress,
+            cancel=cancel)
+
+
+def _radial(session: Session, maps, geometry: DiskGeometry, slits: SlitSet,
+            seed_seq: np.random.SeedSequence, notes: list[str], progress,
+            cancel):
+    """Omega_p(R) with the session's slits, or None (disabled or failed)."""
+    if session.radial is None:
+        return None
+    if session.input.kind == "absorption":
+        notes.append("pattern speed against radius: not measured (the "
+                     "absorption route has no velocity map)")
+        return None
+    from .errors import Cancelled, GyrometerError
+    from .radial import measure_radial
+
+    if session.input.kind == "cube":
+        notes.append("pattern speed against radius: measured on the moment "
+                     "maps of the cube")
+    try:
+        result = measure_radial(maps, geometry, slits, session.radial,
+                                rng=np.random.default_rng(seed_seq),
+                                progress=progress, cancel=cancel, warn=False)
+    except Cancelled:
+        raise
+    except GyrometerError as exc:
+        notes.append(f"pattern speed against radius: {exc}")
+        return None
+    notes.extend(f"pattern speed against radius: {n}" for n in result.warnings)
+    return result
 
 
 def _diagnostics(maps, geometry, slits, notes, progress, cancel):
@@ -684,7 +1039,68 @@ def result_details(result: PipelineResult) -> dict:
         details["bar_length_method"] = result.bar.length.method
     if result.bar.rate is not None:
         details["rate_class_boundaries"] = result.bar.rate.boundaries_source
+    details["route"] = result.row.route
+    if result.rotation_curve is not None and bool(
+            np.any(result.rotation_curve.flagged)):
+        details["rotation_curve_flagged"] = {
+            "r_arcsec": [float(r) for r in np.asarray(
+                result.rotation_curve.r_arcsec)[result.rotation_curve.flagged]],
+            "reason": result.rotation_curve.flag_reason}
+    if result.radial is not None:
+        details["radial"] = radial_details(result.radial)
+    if result.absorption is not None:
+        details["absorption"] = absorption_details(result)
     return details
+
+
+def radial_details(radial) -> dict:
+    """JSON-like summary of a :class:`~gyrometer.core.radial.RadialResult`
+    (stored under ``details.radial`` of the results metadata)."""
+    out: dict[str, Any] = {
+        "method": "radial Tremaine-Weinberg (Merrifield, Rand & Meidt 2006; "
+                  "Meidt et al. 2008)",
+        "edges_arcsec": [float(e) for e in radial.edges_arcsec],
+        "omega_p_kms_arcsec": [float(v) for v in radial.omega_kms_arcsec],
+        "omega_p_err_kms_arcsec": [float(v) for v in
+                                   radial.omega_err_kms_arcsec],
+        "resolution": [float(v) for v in radial.resolution],
+        "regularisation": radial.regularisation, "lam": float(radial.lam),
+        "lam_method": radial.lam_method, "chi2": float(radial.chi2),
+        "dof": float(radial.dof), "error_method": radial.error_method,
+        "mean_omega_p_kms_arcsec": float(radial.mean_omega_kms_arcsec),
+        "mean_omega_p_err_kms_arcsec": float(radial.mean_omega_err_kms_arcsec),
+        "vsys_offset_kms": radial.vsys_offset_kms,
+        "vsys_offset_err_kms": radial.vsys_offset_err_kms,
+    }
+    if radial.omega_kms_kpc is not None:
+        out["edges_kpc"] = [float(e) for e in radial.edges_kpc]
+        out["omega_p_kms_kpc"] = [float(v) for v in radial.omega_kms_kpc]
+        out["omega_p_err_kms_kpc"] = [float(v) for v in
+                                      radial.omega_err_kms_kpc]
+    return out
+
+
+def absorption_details(result: PipelineResult) -> dict:
+    """JSON-like summary of the absorption-line route: settings used and
+    one entry per slit spectrum fit."""
+    a = result.absorption
+    st = a.settings
+    return {
+        "template": a.template.origin,
+        "fit_window_A": None if st.fit_window_A is None else list(st.fit_window_A),
+        "continuum_band_A": (None if st.continuum_band_A is None
+                             else list(st.continuum_band_A)),
+        "losvd": st.losvd, "n_hermite": st.n_hermite,
+        "multiplicative_degree": st.multiplicative_degree,
+        "additive_degree": st.additive_degree,
+        "n_mc": st.n_mc,
+        "geometry_draws": result.session.absorption.geometry_draws,
+        "slit_fits": [{"mean_velocity_kms": f.mean_velocity_kms,
+                       "mean_velocity_err_kms": f.mean_velocity_err_kms,
+                       "sigma_kms": f.sigma_kms,
+                       "reduced_chi2": f.reduced_chi2, "snr": f.snr,
+                       "message": f.message} for f in a.slit_fits],
+    }
 
 
 def results_table(result: PipelineResult):
@@ -708,8 +1124,12 @@ def output_paths(result: PipelineResult, folder: str | os.PathLike | None = None
     paths: dict[str, Path] = {}
     for fmt in out.tables:
         paths[f"table.{fmt}"] = base / f"{stem}.{fmt}"
+    if result.radial is not None and out.tables:
+        paths["radial.ecsv"] = base / f"{stem}_radial.ecsv"
     for kind in out.figure_kinds:
         if kind == "rotation" and result.curve_fit is None:
+            continue
+        if kind == "radial" and result.radial is None:
             continue
         if kind == "convergence" and result.convergence is None:
             continue
@@ -723,6 +1143,30 @@ def output_paths(result: PipelineResult, folder: str | os.PathLike | None = None
     if out.session:
         paths["session"] = base / f"{stem}.session.toml"
     return paths
+
+
+def radial_results_table(result: PipelineResult):
+    """Per-annulus table of Omega_p(R) (:func:`gyrometer.core.radial.radial_table`)
+    with the galaxy, route and tracer in its metadata."""
+    from .radial import radial_table
+
+    table = radial_table(result.radial)
+    table.meta.update({"galaxy": result.name, "route": result.row.route,
+                       "tracer": result.row.tracer,
+                       "maps": ("moment maps of the cube"
+                                if result.row.route == "cube" else "maps")})
+    return table
+
+
+def write_radial_table(result: PipelineResult, path: str | os.PathLike,
+                       overwrite: bool = False) -> Path:
+    """Write :func:`radial_results_table` as ECSV, atomically."""
+    from .safeio import atomic_output
+
+    table = radial_results_table(result)
+    with atomic_output(path, overwrite, suffix=".ecsv") as tmp:
+        table.write(tmp, format="ascii.ecsv")
+    return Path(path)
 
 
 def export_result(result: PipelineResult, folder: str | os.PathLike | None = None,
@@ -780,6 +1224,8 @@ def export_result(result: PipelineResult, folder: str | os.PathLike | None = Non
                 if fig_kind not in figures_cache:
                     figures_cache[fig_kind] = FIGURES[fig_kind](result)
                 save_figure(figures_cache[fig_kind], tmp)
+            elif kind == "radial.ecsv":
+                write_radial_table(result, tmp)
             elif kind == "regions":
                 write_slit_regions(tmp, result.session.slits,
                                    result.session.geometry)

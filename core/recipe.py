@@ -115,6 +115,23 @@ def describe_session(session: Session) -> list[str]:
             and bar.pa_deg is not None else "on the sky, PA estimated, "
             "deprojected" if bar.on_sky else "deprojected")
     lines.append("bar length: " + text)
+    if inp.kind == "absorption":
+        st = session.absorption.stellar
+        window = ("the whole cube" if st.fit_window_A is None else
+                  f"{st.fit_window_A[0]:g}-{st.fit_window_A[1]:g} Angstrom")
+        lines.append(f"absorption lines: slit spectra fitted over {window}, "
+                     f"template {st.template}, {st.n_mc} noise draws per "
+                     f"slit, {session.absorption.geometry_draws} geometry "
+                     "re-measurements per term")
+    rad = session.radial
+    if rad is None:
+        lines.append("pattern speed against radius: not measured")
+    else:
+        annuli = (f"{len(rad.edges_arcsec) - 1} annuli with given edges"
+                  if rad.edges_arcsec else f"{rad.n_annuli} equal annuli"
+                  if rad.n_annuli else "one annulus per slit pair")
+        lines.append(f"pattern speed against radius: {annuli}, "
+                     f"{rad.regularisation}, lam = {rad.lam}")
     out = session.output
     lines.append(f"outputs: {out.folder} ({', '.join(out.tables)}; figures: "
                  f"{', '.join(out.figures) or 'none'})")
@@ -249,6 +266,8 @@ def _starter_line(spec: KeySpec, value, section: str) -> str:
             return f'{spec.name} = ""'
         if spec.kind == "float|estimate":
             return f'{spec.name} = "estimate"'
+        if spec.kind == "floats?":
+            return f"# {spec.name} = [6562.80, 6583.45]    (optional)"
         example = {"distance_mpc": 20.0, "rest_value": 6562.8,
                    "inc_deg": 45.0, "pa_deg": 0.0}.get(spec.name, 0.0)
         return f"# {spec.name} = {_toml_value(example)}    (optional)"

@@ -43,6 +43,8 @@ from .errors import GyrometerError, RecipeError, SessionError
 from .budget import BudgetSettings
 from .geometry import DiskGeometry
 from .moments import MASK_METHODS, CONTINUUM_METHODS, MomentSettings
+from .radial import REGULARISATIONS, RadialSettings
+from .stellar import DEFAULT_SKY_LINES_A, StellarSettings
 from .safeio import write_text_atomic
 from .slits import Slit, SlitSet
 
@@ -61,6 +63,9 @@ __all__ = [
     "RotationSettings",
     "BarSettings",
     "OutputSettings",
+    "RadialSettings",  # re-exported from gyrometer.core.radial
+    "StellarSettings",  # re-exported from gyrometer.core.stellar
+    "AbsorptionSettings",
     "Session",
     "SCHEMA",
     "KeySpec",
@@ -84,12 +89,12 @@ BUDGET_TERMS = ("noise", "slit bootstrap", "position angle", "centre",
 _TERM_FLAGS = {"noise": "noise", "slit bootstrap": "bootstrap",
                "position angle": "position_angle", "centre": "centre",
                "inclination": "inclination"}
-ROUTES = ("maps", "cube")
+ROUTES = ("maps", "cube", "absorption")
 RC_SOURCES = ("derived", "file", "none")
 RC_MODELS = ("best", "arctan", "polyex", "disk+halo", "bertola", "spline")
 OUTPUT_FORMATS = ("ecsv", "csv", "json", "tex")
 FIGURE_FORMATS = ("png", "pdf", "svg")
-FIGURE_KINDS = ("map", "fit", "convergence", "pa", "rotation")
+FIGURE_KINDS = ("map", "fit", "convergence", "pa", "rotation", "radial")
 from .dataset import TRACERS  # noqa: E402  (after the constants it sits with)
 
 
@@ -100,8 +105,10 @@ class InputSpec:
 
     Attributes
     ----------
-    kind : {"maps", "cube"}
-        Maps (intensity + velocity) or one spectral cube.
+    kind : {"maps", "cube", "absorption"}
+        Maps (intensity + velocity), one emission-line cube, or one
+        absorption-line cube (wavelength axis; slit spectra fitted, see
+        :mod:`gyrometer.core.stellar` and the ``[stellar]`` section).
     maps : str
         One multi-extension FITS file holding the maps (extensions named
         INTENSITY/FLUX, VELOCITY/VEL ..., see
@@ -109,7 +116,7 @@ class InputSpec:
     intensity, velocity, intensity_error, velocity_error : str
         FITS files of the maps route (errors optional, ``""`` = none).
     cube : str
-        FITS cube of the cube route.
+        FITS cube of the cube and absorption routes.
     sha256 : tuple of (str, str)
         ``(role, hex digest)`` of every input as read (filled by the
         pipeline; checked when a session is re-run).
@@ -126,7 +133,7 @@ class InputSpec:
 
     def files(self) -> dict[str, str]:
         """``{role: path}`` of the files this route reads (non-empty only)."""
-        roles = (("cube",) if self.kind == "cube" else
+        roles = (("cube",) if self.kind in ("cube", "absorption") else
                  ("maps", "intensity", "velocity", "intensity_error",
                   "velocity_error"))
         return {r: getattr(self, r) for r in roles if getattr(self, r)}
@@ -205,6 +212,26 @@ class BarSettings:
 
 
 @dataclass(frozen=True)
+class AbsorptionSettings:
+    """Settings of the absorption-line route (``[input] kind = "absorption"``).
+
+    Attributes
+    ----------
+    stellar : gyrometer.core.stellar.StellarSettings
+        Fit window, continuum band, masks, polynomial degrees, template and
+        the noise Monte Carlo draws per slit (``n_mc``).
+    geometry_draws : int
+        Re-measurements of the slit spectra with the position angle (and,
+        separately, the centre) drawn from their errors, for the geometry
+        terms of the uncertainty budget (0 = leave those terms out). Each
+        draw refits every slit spectrum, so this is kept small.
+    """
+
+    stellar: StellarSettings = field(default_factory=StellarSettings)
+    geometry_draws: int = 30
+
+
+@dataclass(frozen=True)
 class OutputSettings:
     """What is written and where.
 
@@ -267,6 +294,11 @@ class Session:
         geometry terms come from the geometry's ``*_err`` fields.
     rotation : RotationSettings
     bar : BarSettings
+    radial : gyrometer.core.radial.RadialSettings or None
+        Pattern speed against radius (``[radial] enabled = true``); None =
+        not measured.
+    absorption : AbsorptionSettings
+        Used by the absorption route only.
     output : OutputSettings
     schema_version : int
     """
@@ -284,6 +316,8 @@ class Session:
         n_draws=500, seed=20261201))
     rotation: RotationSettings = field(default_factory=RotationSettings)
     bar: BarSettings = field(default_factory=BarSettings)
+    radial: RadialSettings | None = None
+    absorption: AbsorptionSettings = field(default_factory=AbsorptionSettings)
     output: OutputSettings = field(default_factory=OutputSettings)
     schema_version: int = SESSION_SCHEMA_VERSION
 
@@ -315,7 +349,10 @@ class KeySpec:
     kind : str
         ``"str"``, ``"path"``, ``"float"``, ``"int"``, ``"bool"``,
         ``"float?"`` (a number or absent), ``"float|estimate"`` (a number or
-        the string ``"estimate"``), ``"list"`` (list of strings).
+        the string ``"estimate"``), ``"float|gcv"`` (a number or ``"gcv"``),
+        ``"list"`` (list of strings), ``"floats"`` (list of numbers),
+        ``"floats?"`` (list of numbers or absent), ``"pairs"`` (list of
+        ``[low, high]`` number pairs), ``"signed int"`` (any integer).
     default : object
         Value when absent (``None`` = absent/estimate).
     doc : str
@@ -450,6 +487,63 @@ SCHEMA: dict[str, tuple[KeySpec, ...]] = {
         KeySpec("pa_deg", "float|estimate", None, "sky position angle of the "
                 "bar, north through east (deg) or 'estimate'"),
     ),
+    "radial": (
+        KeySpec("enabled", "bool", False, "also measure the pattern speed "
+                "against radius (radial Tremaine-Weinberg: Merrifield, Rand & "
+                "Meidt 2006; Meidt et al. 2008) with the same slits"),
+        KeySpec("n_annuli", "int", 0, "equal-width annuli from the centre to "
+                "the outermost slit (0 = one annulus per slit pair, starting "
+                "at its inner radius)"),
+        KeySpec("edges_arcsec", "floats", [], "explicit annulus edges, disk-"
+                "plane radius (arcsec, increasing; [] = use n_annuli)"),
+        KeySpec("regularisation", "str", "tikhonov-1st-difference",
+                "smoothing of Omega_p(R)", REGULARISATIONS),
+        KeySpec("lam", "float|gcv", "gcv", "regularisation strength "
+                "(dimensionless) or 'gcv' (generalised cross-validation)"),
+        KeySpec("fit_vsys_offset", "bool", False, "fit a correction to the "
+                "systemic velocity (needs slits on both sides)"),
+        KeySpec("n_mc", "int", 0, "noise Monte Carlo draws (0 = linear "
+                "error propagation)"),
+        KeySpec("oversample", "int", 2, "slit samples per pixel (1-8)"),
+    ),
+    "stellar": (
+        KeySpec("fit_window_A", "floats", [], "absorption route: observed "
+                "wavelength range fitted, [low, high] Angstrom ([] = the "
+                "cube less 1 % at each end)"),
+        KeySpec("continuum_band_A", "floats", [], "observed band whose "
+                "integrated light is the surface brightness, [low, high] "
+                "Angstrom ([] = the fit window)"),
+        KeySpec("emission_lines_A", "floats?", None, "rest wavelengths of "
+                "emission lines to mask (Angstrom; absent = the built-in "
+                "ionised-gas lines)"),
+        KeySpec("emission_halfwidth_kms", "float", 400.0, "half-width of "
+                "each emission-line mask (km/s)"),
+        KeySpec("sky_lines_A", "floats", list(DEFAULT_SKY_LINES_A),
+                "observed wavelengths of sky lines to mask (Angstrom)"),
+        KeySpec("sky_halfwidth_A", "float", 4.0, "half-width of each sky "
+                "mask (Angstrom)"),
+        KeySpec("mask_ranges_A", "pairs", [], "further observed ranges to "
+                "mask, [[low, high], ...] Angstrom"),
+        KeySpec("multiplicative_degree", "signed int", 3, "degree of the "
+                "multiplicative Legendre polynomial (-1 = none)"),
+        KeySpec("additive_degree", "signed int", -1, "degree of the additive "
+                "Legendre polynomial (-1 = none)"),
+        KeySpec("n_hermite", "int", 2, "Gauss-Hermite terms beyond the "
+                "Gaussian: 0, 2 (h3, h4) or 4", (0, 2, 4)),
+        KeySpec("losvd", "str", "binned", "whose first moment is <V>",
+                ("binned", "gauss-hermite")),
+        KeySpec("v_range_kms", "float", 800.0, "search range of the mean "
+                "velocity about V_sys (km/s)"),
+        KeySpec("template", "str", "galaxy", "'galaxy' (stacked central "
+                "spectra) or the path of a 1D FITS template spectrum"),
+        KeySpec("template_radius_arcsec", "float", 1.5, "radius of the "
+                "central aperture of a galaxy template (arcsec)"),
+        KeySpec("n_mc", "int", 30, "noise Monte Carlo draws of every slit "
+                "spectrum (the 'noise' term of the budget)"),
+        KeySpec("geometry_draws", "int", 30, "re-measurements with the PA, "
+                "and separately the centre, drawn from their errors (the "
+                "geometry terms of the budget; 0 = leave them out)"),
+    ),
     "output": (
         KeySpec("folder", "path", "gyrometer-output", "output folder "
                 "(relative to this file)"),
@@ -538,12 +632,38 @@ def _check_value(spec: KeySpec, value: Any, dotted: str, source: str,
                 or not math.isfinite(value):
             fail("a number or 'estimate'")
         return float(value)
-    if kind == "int":
+    if kind == "float|gcv":
+        if isinstance(value, str):
+            if value != "gcv":
+                raise error("must be a number or 'gcv'", path=source,
+                            keyword=dotted, value=value)
+            return value
+        if isinstance(value, bool) or not isinstance(value, (int, float)) \
+                or not math.isfinite(value) or value < 0:
+            fail("a non-negative number or 'gcv'")
+        return float(value)
+    if kind in ("floats", "floats?"):
+        if not isinstance(value, list) or not all(
+                isinstance(v, (int, float)) and not isinstance(v, bool)
+                and math.isfinite(v) for v in value):
+            fail("a list of numbers")
+        return tuple(float(v) for v in value)
+    if kind == "pairs":
+        if not isinstance(value, list) or not all(
+                isinstance(p, list) and len(p) == 2 and all(
+                    isinstance(v, (int, float)) and not isinstance(v, bool)
+                    and math.isfinite(v) for v in p) for p in value):
+            fail("a list of [low, high] number pairs")
+        return tuple((float(a), float(b)) for a, b in value)
+    if kind in ("int", "signed int"):
         if isinstance(value, bool) or not isinstance(value, int):
             fail("an integer")
-        if value < 0:
+        if value < 0 and kind == "int":
             raise error("must not be negative", path=source, keyword=dotted,
                         value=value)
+        if spec.choices and value not in spec.choices:
+            raise error(f"must be one of {', '.join(map(str, spec.choices))}",
+                        path=source, keyword=dotted, value=value)
         return int(value)
     if kind == "bool":
         if not isinstance(value, bool):
@@ -656,7 +776,7 @@ def _check_files(spec: InputSpec, rotation: RotationSettings, source: str,
                             path=source, keyword=f"input.{needed}",
                             hint="or set input.kind = 'cube' and input.cube")
     elif "cube" not in roles:
-        raise error("the cube route needs this file", path=source,
+        raise error(f"the {spec.kind} route needs this file", path=source,
                     keyword="input.cube")
     items = [(f"input.{r}", p) for r, p in roles.items()]
     if rotation.source == "file":
@@ -756,6 +876,14 @@ def session_from_dict(doc: dict, *, base_dir: str | os.PathLike = ".",
     except GyrometerError as exc:
         raise error(exc.message.replace("moment setting ", ""), path=source,
                     keyword=f"moments.{exc.keyword}", value=exc.value) from exc
+    if inp.kind == "absorption" and geometry is None:
+        raise error("the absorption route needs a given geometry (there is "
+                    "no velocity map to estimate it from)", path=source,
+                    keyword="geometry.mode", value=mode,
+                    hint="set geometry.mode = 'given' with centre, PA, "
+                         "inclination and V_sys")
+    radial = _radial_settings(v["radial"], source, error)
+    absorption = _absorption_settings(v["stellar"], base, source, error)
     session = Session(
         name=v["galaxy"]["name"], tracer=v["galaxy"]["tracer"], input=inp,
         moments=moments, geometry=geometry,
@@ -765,8 +893,57 @@ def session_from_dict(doc: dict, *, base_dir: str | os.PathLike = ".",
         bar=BarSettings(length_arcsec=length,
                         length_err_arcsec=bar["length_err_arcsec"],
                         on_sky=bar["on_sky"], pa_deg=bar["pa_deg"]),
+        radial=radial, absorption=absorption,
         output=OutputSettings(**out))
     return session
+
+
+def _radial_settings(values: dict, source: str, error) -> RadialSettings | None:
+    """The ``[radial]`` section as :class:`RadialSettings` (None = disabled).
+
+    The section is validated even when disabled, so a typo is found before
+    it is switched on.
+    """
+    try:
+        settings = RadialSettings(
+            edges_arcsec=values["edges_arcsec"] or None,
+            n_annuli=values["n_annuli"] or None,
+            regularisation=values["regularisation"], lam=values["lam"],
+            fit_vsys_offset=values["fit_vsys_offset"], n_mc=values["n_mc"],
+            oversample=values["oversample"] or 2)
+    except GyrometerError as exc:
+        raise error(exc.message, path=source,
+                    keyword=f"radial.{exc.keyword or ''}".rstrip("."),
+                    value=exc.value, hint=exc.hint) from exc
+    return settings if values["enabled"] else None
+
+
+def _absorption_settings(values: dict, base: Path, source: str,
+                         error) -> AbsorptionSettings:
+    """The ``[stellar]`` section as :class:`AbsorptionSettings`."""
+    values = dict(values)
+    geometry_draws = values.pop("geometry_draws")
+    for key in ("fit_window_A", "continuum_band_A"):
+        band = values[key]
+        if band and len(band) != 2:
+            raise error("must be [low, high] in Angstrom, or [] for the "
+                        "default", path=source, keyword=f"stellar.{key}",
+                        value=list(band))
+        values[key] = band or None
+    template = values["template"]
+    if template != "galaxy":
+        full = Path(template).expanduser()
+        values["template"] = str(full if full.is_absolute() else base / full)
+    if geometry_draws == 1:
+        raise error("needs 0 (no geometry terms) or at least 2 draws",
+                    path=source, keyword="stellar.geometry_draws", value=1)
+    try:
+        stellar = StellarSettings(**values)
+    except GyrometerError as exc:
+        raise error(exc.message, path=source,
+                    keyword=f"stellar.{exc.keyword or ''}".rstrip("."),
+                    value=exc.value, hint=exc.hint) from exc
+    return AbsorptionSettings(stellar, geometry_draws)
 
 
 # -- writing ------------------------------------------------------------------
@@ -826,6 +1003,8 @@ def session_to_dict(session: Session) -> dict[str, dict[str, Any]]:
                 "length_err_arcsec": bar.length_err_arcsec,
                 "on_sky": bar.on_sky,
                 "pa_deg": "estimate" if bar.pa_deg is None else bar.pa_deg},
+        "radial": _radial_dict(session.radial),
+        "stellar": _stellar_dict(session.absorption),
         "output": {f.name: (list(getattr(session.output, f.name))
                             if isinstance(getattr(session.output, f.name), tuple)
                             else getattr(session.output, f.name))
@@ -840,6 +1019,34 @@ def session_to_dict(session: Session) -> dict[str, dict[str, Any]]:
     for section in doc.values():
         for key in [k for k, val in section.items() if val is None]:
             del section[key]
+    return doc
+
+
+def _radial_dict(settings: RadialSettings | None) -> dict[str, Any]:
+    enabled = settings is not None
+    settings = settings or RadialSettings()
+    return {"enabled": enabled, "n_annuli": settings.n_annuli or 0,
+            "edges_arcsec": list(settings.edges_arcsec or ()),
+            "regularisation": settings.regularisation, "lam": settings.lam,
+            "fit_vsys_offset": settings.fit_vsys_offset,
+            "n_mc": settings.n_mc, "oversample": settings.oversample}
+
+
+def _stellar_dict(absorption: AbsorptionSettings) -> dict[str, Any]:
+    st = absorption.stellar
+    doc: dict[str, Any] = {}
+    for spec in SCHEMA["stellar"]:
+        if spec.name == "geometry_draws":
+            doc[spec.name] = absorption.geometry_draws
+            continue
+        value = getattr(st, spec.name)
+        if spec.kind == "floats":
+            value = list(value or ())
+        elif spec.kind == "pairs":
+            value = [list(p) for p in value]
+        elif spec.kind == "floats?" and value is not None:
+            value = list(value)
+        doc[spec.name] = value
     return doc
 
 

@@ -58,6 +58,12 @@ Notes
   within one. The run folder belongs to the run: a galaxy that runs again
   replaces its own earlier outputs; a new run refuses a non-empty folder
   that holds no manifest unless ``overwrite`` (``--force``) is given.
+* Worker processes should run their math libraries single-threaded
+  (``OMP_NUM_THREADS=1``, ``OPENBLAS_NUM_THREADS=1``): with one worker per
+  core, multi-threaded BLAS oversubscribes the cores. The ``sample``
+  command sets these for the local engine unless they are set already; a
+  script calling :func:`run_sample` should set them before numpy is
+  imported. Dask's nanny sets them for its workers by default.
 * Dask: the client (this process) and the workers must see the recipes,
   the data and the run folder at the same paths (a shared file system).
   Dask's own worker memory limits apply; stopping a run cancels queued
@@ -130,6 +136,12 @@ MAPS_MEMORY_FACTOR = 4.0
 
 #: Seconds to wait for a Dask scheduler to answer before giving up.
 DASK_CONNECT_TIMEOUT_S = 20.0
+
+#: Environment variables that set the thread count of the math libraries
+#: (OpenMP, OpenBLAS, MKL); the ``sample`` command sets them to 1 for the
+#: local engine's workers unless the user set them.
+_THREAD_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS",
+                     "MKL_NUM_THREADS")
 
 _SAMPLE_KEYS = ("name", "recipes", "folder", "table", "output", "latex_style")
 _ENGINE_KEYS = ("kind", "workers", "scheduler", "memory_fraction")
@@ -1099,7 +1111,7 @@ def _make_engine(settings: EngineSettings, cancel):
                         settings.memory_fraction)
 
 
-def _prepare_folder(run_dir: Path, overwrite: bool) -> None:
+def _check_folder(run_dir: Path, overwrite: bool) -> None:
     manifest = run_dir / _MANIFEST
     if run_dir.exists() and not run_dir.is_dir():
         raise OutputError("the run folder is a file", path=str(run_dir))
@@ -1109,6 +1121,9 @@ def _prepare_folder(run_dir: Path, overwrite: bool) -> None:
                           "sample manifest", path=str(run_dir),
                           hint="choose another output folder, or use --force "
                                "to write into it")
+
+
+def _make_folder(run_dir: Path) -> None:
     try:
         (run_dir / _GALAXIES).mkdir(parents=True, exist_ok=True)
     except OSError as exc:
@@ -1170,12 +1185,11 @@ def run_sample(spec: SampleSpec, *, engine: str | None = None,
         settings = _checked_engine(replace(settings, **changes), None)
     run_dir = Path(output_dir if output_dir is not None
                    else spec.output_dir).resolve()
-    _prepare_folder(run_dir, overwrite)
+    _check_folder(run_dir, overwrite)
     manifest_path = run_dir / _MANIFEST
     manifest = _read_manifest(manifest_path)
     records: dict = manifest["galaxies"]
     cache: dict = manifest["checksums"]
-    _write_manifest(manifest_path, spec, manifest)  # the folder is a run now
     cancel_path = run_dir / f".cancel-{os.getpid()}-{time.time_ns()}"
 
     outcomes: dict[str, GalaxyOutcome] = {}
@@ -1229,10 +1243,12 @@ def run_sample(spec: SampleSpec, *, engine: str | None = None,
         _write_manifest(manifest_path, spec, manifest)
         tell(f"{outcome.galaxy} {outcome.status}")
 
+    if queue:  # before writing anything: the engine may fail to start
+        eng = _make_engine(settings, cancel)
     stopped = False
     try:
-        if queue:
-            eng = _make_engine(settings, cancel)
+        _make_folder(run_dir)
+        _write_manifest(manifest_path, spec, manifest)  # a run folder now
         tell("started")
         while queue or running:
             if cancel is not None and cancel.is_set() and not stopped:
@@ -1346,7 +1362,7 @@ def _prepare_task(entry: GalaxyEntry, run_dir: Path, cache: dict,
         budget=replace(session.budget, workers=1),
         output=replace(session.output, folder=str(folder), tables=tables))
     # the galaxy folders belong to the run (a new folder must be empty or
-    # --force given, see _prepare_folder), so a re-run replaces its outputs
+    # --force given, see _check_folder), so a re-run replaces its outputs
     return GalaxyTask(entry.galaxy, entry.source, session, key,
                       overwrite=True, cancel_path=cancel_path)
 
@@ -1479,6 +1495,13 @@ def run_sample_command(args, bar=None, cancel=None) -> int:
     engine = args.engine
     if args.scheduler and engine is None:
         engine = "dask"
+    if (engine or spec.engine.kind) == "local":
+        # one math-library thread per worker process, as Dask's nanny does
+        # for its workers: N workers x N threads on N cores oversubscribe
+        # (the workers start after this, so they read it; a value the user
+        # set is kept)
+        for var in _THREAD_VARIABLES:
+            os.environ.setdefault(var, "1")
     if bar is None and not args.quiet:
         from .cli import ProgressBar
         bar = ProgressBar()

@@ -127,7 +127,8 @@ class ResultRow:
     tracer : str
         Tracer of the kinematics (``"stars"``, ``"ionised gas"`` ...).
     route : str
-        ``"maps"`` or ``"cube"``.
+        ``"maps"``, ``"cube"`` or ``"absorption"`` (slit spectra of an
+        absorption-line cube).
     distance_mpc, inc_deg, pa_deg, vsys_kms : float
         Adopted geometry (NaN distance when none was given).
     n_slits : int
@@ -175,7 +176,7 @@ class ResultRow:
 _SCALAR_COLUMNS: tuple[tuple[str, str, str], ...] = (
     ("galaxy", "", "Galaxy name"),
     ("tracer", "", "Kinematic tracer"),
-    ("route", "", "Input route (maps or cube)"),
+    ("route", "", "Input route (maps, cube or absorption)"),
     ("distance_mpc", "Mpc", "Adopted distance"),
     ("inc_deg", "deg", "Adopted inclination"),
     ("pa_deg", "deg", "Position angle of the receding line of nodes, N through E"),
@@ -597,6 +598,7 @@ def format_value_error(value: float, plus: float, minus: float | None = None,
 _LATEX_COLUMNS: tuple[tuple[str, str, str, str], ...] = (
     ("Galaxy", "", "text", "galaxy"),
     ("Tracer", "", "text", "tracer"),
+    ("Route", "", "text", "route"),
     ("$D$", "(Mpc)", "fixed1", "distance_mpc"),
     ("$i$", "(deg)", "fixed1", "inc_deg"),
     ("PA", "(deg)", "fixed1", "pa_deg"),
@@ -659,7 +661,7 @@ def latex_table(table, style: str = "aastex", *,
     if style not in ("aastex", "tabular"):
         raise ValueError("style must be 'aastex' or 'tabular'")
     cols = _LATEX_COLUMNS
-    align = "l" + "l" + "c" * (len(cols) - 2)
+    align = "lll" + "c" * (len(cols) - 3)
     note = ("Values are medians with 16th--84th percentile errors of the "
             "Monte Carlo budget, rounded with the Particle Data Group rule.")
     lines: list[str] = []

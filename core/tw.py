@@ -27,7 +27,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.sparse as sp
 
 from .dataset import Cube, MapSet
 from .errors import DataContentError, FitError, SlitError
@@ -35,7 +34,7 @@ from .geometry import DiskGeometry
 from .progress import CancelFlag, ProgressCallback, check_cancel, report
 from .results import LineFit, SlitIntegrals, TWMeasurement
 from .slits import PixelFrame, Slit, SlitSet, SlitWeights, pixel_frame, slit_weights
-from .yorkfit import YORK_METHOD, york_fit
+from .yorkfit import york_fit
 
 __all__ = [
     "slit_integrals_maps",
@@ -43,6 +42,8 @@ __all__ = [
     "fit_pattern_speed",
     "measure",
     "LiveMeasurer",
+    "PreparedSlits",
+    "prepare_slits",
     "OLS_METHOD",
 ]
 
@@ -73,6 +74,8 @@ class _Layout:
     area_pix: np.ndarray     # per slit
     dx_arcsec: float
     n_slits: int
+    flat_safe: np.ndarray = None     # per entry: max(flat, 0)
+    outside_idx: np.ndarray = None   # entries beyond the map edge
 
 
 @dataclass(frozen=True, eq=False)
@@ -138,34 +141,65 @@ def _layout(weights: Sequence[SlitWeights]) -> _Layout:
     return _Layout(row, flat, weight, np.concatenate([w.x_arcsec for w in weights]),
                    np.concatenate(row_slit), np.concatenate(row_mirror),
                    np.concatenate(row_absx), row_has, row_outside, row_start,
-                   np.array([w.area_pix for w in weights]), dx, n)
+                   np.array([w.area_pix for w in weights]), dx, n,
+                   np.maximum(flat, 0), np.flatnonzero(flat < 0))
 
 
-def _gather(array, flat):
-    """``array.ravel()[flat]`` with NaN where ``flat < 0``."""
+@dataclass(frozen=True, eq=False)
+class PreparedSlits:
+    """Slit weights arranged for repeated integration (see :func:`prepare_slits`).
+
+    Attributes
+    ----------
+    weights : tuple of SlitWeights
+    """
+
+    weights: tuple[SlitWeights, ...]
+    _layout: _Layout
+
+    def __len__(self) -> int:
+        return len(self.weights)
+
+
+def prepare_slits(weights: Sequence[SlitWeights]) -> PreparedSlits:
+    """Group the weighted pixels of all slits by ``X`` bin once, so that
+    :func:`slit_integrals_maps` can be called repeatedly on new data (or in
+    a loop) without redoing it."""
+    weights = tuple(weights)
+    return PreparedSlits(weights, _layout(weights))
+
+
+def _gather(array, layout: _Layout):
+    """``array.ravel()[flat]`` with NaN beyond the map edge."""
     if array is None:
         return None
-    values = np.asarray(array, dtype=float).ravel().take(np.maximum(flat, 0))
-    values[flat < 0] = np.nan
+    values = np.asarray(array, dtype=float).ravel().take(layout.flat_safe)
+    values[layout.outside_idx] = np.nan
     return values
 
 
 def _pixel_terms_maps(layout: _Layout, maps: MapSet, vsys_kms: float):
     """Per-entry integrands: S, S V', var S, var(S V'), cov(S, S V'), valid."""
-    s = _gather(maps.intensity, layout.flat)
-    v = _gather(maps.velocity_kms, layout.flat) - vsys_kms
-    valid = np.isfinite(s) & np.isfinite(v)
+    s = _gather(maps.intensity, layout)
+    v = _gather(maps.velocity_kms, layout)
+    v -= vsys_kms
     have_err = maps.intensity_err is not None and maps.velocity_err_kms is not None
     if have_err:
-        es = _gather(maps.intensity_err, layout.flat)
-        ev = _gather(maps.velocity_err_kms, layout.flat)
-        valid &= np.isfinite(es) & np.isfinite(ev)
-    s = np.where(valid, s, 0.0)
-    v = np.where(valid, v, 0.0)
+        es = _gather(maps.intensity_err, layout)
+        ev = _gather(maps.velocity_err_kms, layout)
+        valid = np.isfinite(s + v + es + ev)
+    else:
+        valid = np.isfinite(s + v)
+    bad = ~valid
+    s[bad] = 0.0
+    v[bad] = 0.0
     if have_err:
-        vs = np.where(valid, es, 0.0) ** 2
-        vv = np.where(valid, ev, 0.0) ** 2
-        terms = (s, s * v, vs, vs * v * v + s * s * vv, vs * v)
+        es[bad] = 0.0
+        ev[bad] = 0.0
+        vs = es * es
+        vv = ev * ev
+        sv = s * v
+        terms = (s, sv, vs, vs * v * v + s * s * vv, vs * v)
     else:
         nan = np.full(s.shape, np.nan)
         terms = (s, s * v, nan, nan, nan)
@@ -173,31 +207,23 @@ def _pixel_terms_maps(layout: _Layout, maps: MapSet, vsys_kms: float):
 
 
 def _row_sums(layout: _Layout, terms, valid) -> np.ndarray:
-    """The 11 per-row sums from per-entry integrands (see ``_B`` ...).
-
-    One sparse product ``W @ T`` with ``W[row, entry] = weight`` and the
-    integrand columns ``T`` (extra factors of the weight for the variances).
-    """
+    """The 11 per-row sums from per-entry integrands (see ``_B`` ...)."""
     s, sv, var_s, var_sv, cov_s_sv = terms
     w = layout.weight * valid
     x = layout.x_arcsec
     n_rows = layout.row_slit.size
-    n_ent = w.size
-    mat = sp.csr_matrix((w, (layout.row, np.arange(n_ent))), shape=(n_rows, n_ent))
-    wv = w * var_s
-    cols = np.empty((n_ent, _NSUMS), order="F")
-    cols[:, _B] = s
-    cols[:, _A] = s * x
-    cols[:, _C] = sv
-    cols[:, _VBB] = wv
-    cols[:, _VAB] = wv * x
-    cols[:, _VAA] = cols[:, _VAB] * x
-    cols[:, _VCC] = w * var_sv
-    cols[:, _VBC] = w * cov_s_sv
-    cols[:, _VAC] = cols[:, _VBC] * x
-    cols[:, _NPIX] = valid / np.where(layout.weight > 0, layout.weight, 1.0)
-    cols[:, _WSUM] = 1.0
-    return np.ascontiguousarray((mat @ cols).T)
+    out = np.empty((_NSUMS, n_rows))
+    ws = w * s
+    w2 = w * w
+    wv = w2 * var_s
+    wc = w2 * cov_s_sv
+    wvx = wv * x
+    for q, values in ((_B, ws), (_A, ws * x), (_C, w * sv), (_VBB, wv),
+                      (_VAA, wvx * x), (_VCC, w2 * var_sv), (_VAB, wvx),
+                      (_VAC, wc * x), (_VBC, wc), (_NPIX, valid.astype(float)),
+                      (_WSUM, w)):
+        out[q] = np.bincount(layout.row, weights=values, minlength=n_rows)
+    return out
 
 
 def _row_bad(layout: _Layout, valid) -> np.ndarray:
@@ -271,7 +297,8 @@ def _check_weights(weights, shape):
 
 
 def slit_integrals_maps(maps: MapSet, geometry: DiskGeometry,
-                        weights: Sequence[SlitWeights], *, symmetric: bool = True,
+                        weights: Sequence[SlitWeights] | PreparedSlits, *,
+                        symmetric: bool = True,
                         offsets_arcsec=None, half_lengths_arcsec=None) -> SlitIntegrals:
     """Tremaine-Weinberg integrals of every slit from intensity and velocity maps.
 
@@ -282,8 +309,9 @@ def slit_integrals_maps(maps: MapSet, geometry: DiskGeometry,
         optionally, their 1-sigma error maps.
     geometry : DiskGeometry
         ``vsys_kms`` is subtracted from ``V``.
-    weights : sequence of SlitWeights
-        From :func:`gyrometer.core.slits.slit_weights` for this map.
+    weights : sequence of SlitWeights or PreparedSlits
+        From :func:`gyrometer.core.slits.slit_weights` for this map
+        (optionally through :func:`prepare_slits`).
     symmetric : bool
         Truncate each slit symmetrically about the minor axis and mirror
         masked pixels ``X -> -X`` (see module notes).
@@ -298,8 +326,12 @@ def slit_integrals_maps(maps: MapSet, geometry: DiskGeometry,
         B``, ``d<V>/dV_p = w_p S_p / B`` (``B = sum w S``), and their
         correlation. Errors are NaN without error maps.
     """
-    weights = _check_weights(weights, maps.shape)
-    layout = _layout(weights)
+    if isinstance(weights, PreparedSlits):
+        layout = weights._layout
+        weights = _check_weights(weights.weights, maps.shape)
+    else:
+        weights = _check_weights(weights, maps.shape)
+        layout = _layout(weights)
     terms, valid = _pixel_terms_maps(layout, maps, geometry.vsys_kms)
     sums = _row_sums(layout, terms, valid)
     bad = _row_bad(layout, valid)
@@ -364,8 +396,11 @@ def slit_integrals_cube(cube: Cube, geometry: DiskGeometry,
         Errors from the cube's variance (NaN without one), assuming
         independent voxels.
     """
-    weights = _check_weights(weights, cube.spatial_shape)
-    layout = _layout(weights)
+    if isinstance(weights, PreparedSlits):
+        weights, layout = _check_weights(weights.weights, cube.spatial_shape), weights._layout
+    else:
+        weights = _check_weights(weights, cube.spatial_shape)
+        layout = _layout(weights)
     if velocities_kms is None:
         v_kms, dv = _channel_velocities(cube)
     else:
@@ -514,7 +549,7 @@ def _assemble(integrals, geometry, route, exclude, warn, tracer) -> TWMeasuremen
 
 def measure(data: MapSet | Cube, geometry: DiskGeometry, slits: SlitSet | Sequence[Slit],
             *, symmetric: bool | None = None, exclude: Sequence[int] = (),
-            weights: Sequence[SlitWeights] | None = None, frame: PixelFrame | None = None,
+            weights: Sequence[SlitWeights] | PreparedSlits | None = None, frame: PixelFrame | None = None,
             warn: bool = True, tracer: str | None = None, window_kms=None,
             velocities_kms=None, progress: ProgressCallback | None = None,
             cancel: CancelFlag | None = None) -> TWMeasurement:
@@ -532,7 +567,8 @@ def measure(data: MapSet | Cube, geometry: DiskGeometry, slits: SlitSet | Sequen
     exclude : sequence of int
         Slits left out of the fit (their integrals are still reported).
     weights, frame : optional
-        Precomputed :func:`~gyrometer.core.slits.slit_weights` /
+        Precomputed :func:`~gyrometer.core.slits.slit_weights` (or
+        :func:`prepare_slits`) /
         :func:`~gyrometer.core.slits.pixel_frame` for this data set.
     warn : bool
         Issue the diagnostics (:func:`gyrometer.core.diagnostics.check_measurement`)

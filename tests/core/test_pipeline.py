@@ -236,3 +236,24 @@ def test_api_estimates_the_geometry_and_keeps_the_distance():
     assert abs(g.pa_deg - truth.geometry.pa_deg) < 5.0
     slits = api.make_slits(maps, g, count=5, spacing_arcsec=3.0)
     assert len(slits) == 5 and slits.symmetric
+
+
+def test_derived_rotation_curve_flags_the_rings_inside_the_bar(tmp_path):
+    # Inside a bar the tracer's rotation is not the circular speed (DOMAIN.md
+    # section 3, common practice): those tilted rings must not enter the model.
+    session = _small_session(tmp_path)
+    result = run_session(session)
+    curve = result.rotation_curve
+    bar = result.bar.length.length_arcsec
+    inside = np.asarray(curve.r_arcsec) <= bar
+    assert inside.any() and (~inside).sum() >= 3
+    assert np.all(np.asarray(curve.flagged)[inside])
+    assert "inside the bar" in curve.flag_reason
+    assert result.curve_fit.n_points == int((~np.asarray(curve.flagged)
+                                             & (curve.r_arcsec > 0)).sum())
+    assert any("inside the bar" in n and "flagged" in n
+               for n in result.warnings)
+    # without a bar length nothing is flagged for the bar
+    plain = run_session(session.with_(bar=BarSettings(length_arcsec=0.0)))
+    assert "inside the bar" not in plain.rotation_curve.flag_reason
+    assert plain.curve_fit.n_points > result.curve_fit.n_points

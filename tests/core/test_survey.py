@@ -209,6 +209,7 @@ def test_unreachable_dask_scheduler_is_a_clear_error(sample_file, tmp_path,
         # port 9 (discard) on loopback: nothing listens there
         survey.run_sample(spec, engine="dask", scheduler="tcp://127.0.0.1:9",
                           output_dir=tmp_path / "run")
+    assert not (tmp_path / "run").exists()  # nothing written
 
 
 def test_missing_dask_is_a_clear_error_and_core_imports_without_it(

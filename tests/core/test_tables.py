@@ -82,19 +82,19 @@ def test_missing_values_and_errors():
 #   LBDP-023: Omega_p 0.101 +-0.0123 -> 123 -> 2 digits -> 0.101 \pm 0.012
 #             26.4 +-6.1 -> 610 -> 1 digit -> 26 \pm 6
 #             no bar length -> \nodata
-EXPECTED_AASTEX = r"""\begin{deluxetable*}{llcccccccccc}
+EXPECTED_AASTEX = r"""\begin{deluxetable*}{lllcccccccccc}
 \tablecaption{Bar pattern speeds\label{tab:pattern-speeds}}
-\tablehead{\colhead{Galaxy} & \colhead{Tracer} & \colhead{$D$} & \colhead{$i$} & \colhead{PA} & \colhead{$N_{\rm slit}$} & \colhead{$\Omega_p$} & \colhead{$\Omega_p$} & \colhead{$R_{\rm CR}$} & \colhead{$R_{\rm bar}$} & \colhead{$\mathcal{R}$} & \colhead{Class} \\
-\colhead{} & \colhead{} & \colhead{(Mpc)} & \colhead{(deg)} & \colhead{(deg)} & \colhead{} & \colhead{(km s$^{-1}$ arcsec$^{-1}$)} & \colhead{(km s$^{-1}$ kpc$^{-1}$)} & \colhead{(kpc)} & \colhead{(kpc)} & \colhead{} & \colhead{}}
+\tablehead{\colhead{Galaxy} & \colhead{Tracer} & \colhead{Route} & \colhead{$D$} & \colhead{$i$} & \colhead{PA} & \colhead{$N_{\rm slit}$} & \colhead{$\Omega_p$} & \colhead{$\Omega_p$} & \colhead{$R_{\rm CR}$} & \colhead{$R_{\rm bar}$} & \colhead{$\mathcal{R}$} & \colhead{Class} \\
+\colhead{} & \colhead{} & \colhead{} & \colhead{(Mpc)} & \colhead{(deg)} & \colhead{(deg)} & \colhead{} & \colhead{(km s$^{-1}$ arcsec$^{-1}$)} & \colhead{(km s$^{-1}$ kpc$^{-1}$)} & \colhead{(kpc)} & \colhead{(kpc)} & \colhead{} & \colhead{}}
 \startdata
-LBDP-011 & stars & 20.0 & 45.0 & 30.0 & 7 & $0.25^{+0.06}_{-0.05}$ & $52^{+13}_{-11}$ & $3.9^{+0.5}_{-0.4}$ & $3.39 \pm 0.29$ & $1.15^{+0.38}_{-0.23}$ & fast \\
-LBDP-023 & ionised gas & 51.0 & 49.7 & 112.5 & 9 & $0.101 \pm 0.012$ & $26 \pm 6$ & \nodata & \nodata & \nodata & \nodata
+LBDP-011 & stars & maps & 20.0 & 45.0 & 30.0 & 7 & $0.25^{+0.06}_{-0.05}$ & $52^{+13}_{-11}$ & $3.9^{+0.5}_{-0.4}$ & $3.39 \pm 0.29$ & $1.15^{+0.38}_{-0.23}$ & fast \\
+LBDP-023 & ionised gas & absorption & 51.0 & 49.7 & 112.5 & 9 & $0.101 \pm 0.012$ & $26 \pm 6$ & \nodata & \nodata & \nodata & \nodata
 \enddata
 \tablecomments{Values are medians with 16th--84th percentile errors of the Monte Carlo budget, rounded with the Particle Data Group rule.}
 \end{deluxetable*}
 """
 
-EXPECTED_TABULAR_ROW = (r"LBDP-023 & ionised gas & 51.0 & 49.7 & 112.5 & 9 & "
+EXPECTED_TABULAR_ROW = (r"LBDP-023 & ionised gas & absorption & 51.0 & 49.7 & 112.5 & 9 & "
                         r"$0.101 \pm 0.012$ & $26 \pm 6$ & \ldots & \ldots & "
                         r"\ldots & \ldots \\")
 
@@ -102,7 +102,7 @@ EXPECTED_TABULAR_ROW = (r"LBDP-023 & ionised gas & 51.0 & 49.7 & 112.5 & 9 & "
 def _two_galaxies():
     from astropy.table import vstack
     second = ResultRow(galaxy="LBDP-023", tracer="ionised gas",
-                       distance_mpc=51.0, inc_deg=49.7, pa_deg=112.5,
+                       route="absorption", distance_mpc=51.0, inc_deg=49.7, pa_deg=112.5,
                        n_slits=9, omega_p_arcsec=Estimate(0.101, 0.0123, 0.0123),
                        omega_p_kpc=Estimate(26.4, 6.1, 6.1))
     return vstack([result_table(_row()), result_table(second)],
@@ -116,7 +116,7 @@ def test_aastex_table_matches_hand_checked_text():
 def test_tabular_style_has_rules_and_one_row_per_galaxy():
     text = latex_table(_two_galaxies(), "tabular")
     assert text.startswith("\\begin{table*}")
-    assert "\\begin{tabular}{llcccccccccc}" in text
+    assert "\\begin{tabular}{lllcccccccccc}" in text
     assert EXPECTED_TABULAR_ROW in text.splitlines()
     assert text.count("\\hline") == 3 + 1  # \hline\hline counts twice
 
