@@ -240,10 +240,14 @@ def intensity_centroid(maps, *, start=None, aperture_arcsec: float | None = None
     brightest pixel, and moves the window (Gaussian of sigma = half the
     aperture radius, truncated at twice the radius) to the centroid until
     the shift is below 0.01 pixel; a smooth window avoids the pixelisation
-    bias of a hard aperture (common practice). The error combines the
-    photon noise of the centroid (``sigma_x^2 = sum w^2 (x - xbar)^2
-    sigma_I^2 / F^2`` with window w, when the map has errors) with the shift
-    between windows of 1x and 1.5x the radius.
+    bias of a hard aperture (common practice). Windows of 4x and 2x the
+    radius are iterated first, so a start on an off-centre peak (the two
+    density peaks of a bar, a bright knot) is pulled to the centre; a finer
+    window that runs off by more than half its radius is left out. The
+    error combines the photon noise of the centroid (``sigma_x^2 = sum w^2
+    (x - xbar)^2 sigma_I^2 / F^2`` with window w, when the map has errors)
+    with the shift between windows of 1x and 1.5x the final radius and a
+    floor of 0.1 pixel for the pixel sampling (common practice).
 
     Parameters
     ----------
@@ -271,8 +275,7 @@ def intensity_centroid(maps, *, start=None, aperture_arcsec: float | None = None
     aperture = aperture_arcsec or max(2.0 * (maps.psf_fwhm_arcsec or 0.0),
                                       4.0 * pix)
 
-    def centroid(radius):
-        ce, cn = 0.0, 0.0
+    def centroid(radius, ce=0.0, cn=0.0):
         for _ in range(n_iter):
             d2 = (east - ce) ** 2 + (north - cn) ** 2
             sel = d2 <= (2.0 * radius) ** 2
@@ -297,22 +300,43 @@ def intensity_centroid(maps, *, start=None, aperture_arcsec: float | None = None
                                      + np.sum((north[sel] - cn) ** 2 * v))) / total
         return ce, cn, noise, int(sel.sum())
 
-    ce, cn, noise, n = centroid(aperture)
-    ce2, cn2, _, _ = centroid(1.5 * aperture)
-    err = math.hypot(noise, math.hypot(ce2 - ce, cn2 - cn))
+    # coarse to fine: a wide window first, so that a start on an off-centre
+    # peak (the ends of a bar, a bright knot) is pulled to the centre
+    # peak (the ends of a bar, a bright knot) is pulled to the centre; a
+    # finer window that runs off by more than half its radius is sitting on
+    # a saddle between peaks, and the coarser result is kept
+    ce = cn = 0.0
+    found = None
+    for radius in (4.0 * aperture, 2.0 * aperture, aperture):
+        try:
+            res = centroid(radius, ce, cn)
+        except DataContentError:
+            if radius == aperture and found is None:
+                raise
+            continue
+        if found is not None and math.hypot(res[0] - ce, res[1] - cn) > 0.5 * radius:
+            break
+        found = (radius, *res)
+        ce, cn = res[0], res[1]
+    used, ce, cn, noise, n = found
+    ce2, cn2, _, _ = centroid(1.5 * used, ce, cn)
+    # plus 0.1 pixel for the pixel sampling and PSF (a centroid of an
+    # undersampled image is not better than ~0.1 pixel; common practice)
+    err = math.hypot(math.hypot(noise, math.hypot(ce2 - ce, cn2 - cn)),
+                     0.1 * pix)
     ra, dec = _offset_center(ra0, dec0, ce, cn)
     return GeometryEstimate(
         ra_deg=ra, dec_deg=dec, center_err_arcsec=err,
-        method=(f"flux-weighted centroid in a {aperture:.3g} arcsec Gaussian "
-                "window, iterated (error: photon noise and the shift between 1x and "
-                "1.5x apertures)"), n_pixels=n)
+        method=(f"flux-weighted centroid in a {used:.3g} arcsec Gaussian "
+                "window, iterated (error: photon noise, the shift between 1x and "
+                "1.5x apertures and 0.1 pixel)"), n_pixels=n)
 
 
 # --------------------------------------------------------------------------
 # Systematic errors from the scatter over radial subsets
 # --------------------------------------------------------------------------
 
-def _excess_scatter(values, errors, *, confidence: float = 0.95) -> float:
+def _excess_scatter(values, errors, *, confidence: float = 0.90) -> float:
     """Spread of sub-sample values beyond what their own errors explain.
 
     With K values ``theta_k`` of statistical errors ``sigma_k``, weights
@@ -728,6 +752,8 @@ def _moments(e, n, w, var=None):
     ``var``.
     """
     total = w.sum()
+    if not total > 0:
+        return math.nan, math.nan, math.nan, math.nan
     me, mn = np.sum(w * e) / total, np.sum(w * n) / total
     de, dn = e - me, n - mn
     g = np.stack([de**2, dn**2, de * dn])
@@ -775,7 +801,9 @@ def photometric_geometry(maps, *, center=None,
       elliptical sub-annuli; the excess scatter of their q and PA over their
       own statistical errors (DerSimonian & Laird 1986 tau, as in
       :func:`kinematic_geometry`; the plain standard deviation when the map
-      has no intensity errors). Isophote twists and
+      has no intensity errors), plus in quadrature the change of q and PA
+      when the centre moves by its 1-sigma error east and north (an
+      off-centre annulus tilts the moments). Isophote twists and
       ellipticity gradients - a bar, a lens, spiral arms, a bulge - change
       the shape with radius, and the isophotes inside a bar do not have the
       disk's shape (common practice: fit the outer disk). Give
@@ -828,7 +856,9 @@ def photometric_geometry(maps, *, center=None,
     grid = sky_grid(maps.wcs, img.shape, ra0, dec0)
     east, north, w = grid.east_arcsec[good], grid.north_arcsec[good], img[good]
     var = var_img[good] if var_img is not None else None
-    pos = w > 0
+    # every valid pixel counts, negative ones too: dropping the negative
+    # noise leaves a positive, round pedestal that biases q towards 1
+    pos = np.isfinite(w)
     east, north, w = east[pos], north[pos], w[pos]
     if var is not None:
         var = var[pos]
@@ -892,6 +922,24 @@ def photometric_geometry(maps, *, center=None,
     if len(qs) < 3:
         notes.append("systematic error not estimated (too few pixels in the "
                      "sub-annuli)")
+    # the centre's own error moves the annulus: half the change of q and PA
+    # for shifts of +-1 sigma east and north, added in quadrature
+    q_cen = pa_cen = 0.0
+    if cerr > 0:
+        dq2 = dpa2 = 0.0
+        for de_, dn_ in ((cerr, 0.0), (0.0, cerr)):
+            shifted = []
+            for sign in (1.0, -1.0):
+                Xs, Ys = sky_to_lon(east - sign * de_, north - sign * dn_, pa)
+                s_ = ((np.hypot(Xs, Ys / q) >= a_in)
+                      & (np.hypot(Xs, Ys / q) <= a_out))
+                shifted.append(_moments(east[s_], north[s_], w[s_])[:2])
+            dq2 += (0.5 * (shifted[0][0] - shifted[1][0])) ** 2
+            dpa2 += (0.5 * ((shifted[0][1] - shifted[1][1] + 90.0) % 180.0
+                            - 90.0)) ** 2
+        q_cen, pa_cen = math.sqrt(dq2), math.sqrt(dpa2)
+    q_sys = math.hypot(q_sys, q_cen)
+    pa_sys = math.hypot(pa_sys, pa_cen)
     inc = float(inclination_from_axis_ratio(q, q0))
     inc_stat = _inc_err(q, q_stat, q0)
     inc_sys = _inc_err(q, q_sys, q0)
@@ -929,11 +977,13 @@ def photometric_geometry(maps, *, center=None,
         method=(f"photometric second moments between {f_in:g} and {f_out:g} "
                 f"of the light; cos^2 i = (q^2 - q0^2)/(1 - q0^2), q0 = {q0:g} "
                 "(Hubble 1926); errors: photon noise plus in quadrature the "
-                f"excess scatter over {len(qs)} sub-annuli"),
+                f"excess scatter over {len(qs)} sub-annuli and the centre "
+                "error"),
         pa_ambiguous=ambiguous, n_pixels=int(sel.sum()),
         extra={"axis_ratio": q, "axis_ratio_err": q_err,
                "axis_ratio_err_stat": q_stat, "axis_ratio_err_sys": q_sys,
                "a_inner_arcsec": float(a_in), "a_outer_arcsec": float(a_out),
+               "axis_ratio_err_center": q_cen, "pa_err_center_deg": pa_cen,
                "annulus_axis_ratio": tuple(qs),
                "annulus_pa_deg": tuple(p % 180.0 for p in pas)},
         notes=tuple(notes),

@@ -480,10 +480,15 @@ def _rotation(session: Session, maps, geometry: DiskGeometry, progress,
         if skipped:
             notes.append(f"rotation curve: {len(skipped)} ring(s) skipped "
                          "(too few pixels or partly outside the field)")
-        notes.extend(f"rotation curve: {n}" for n in rings.notes
-                     if "skipped" not in n)
+        flagged_bar = False
         if bar_length_arcsec:
+            before = curve
             curve = _flag_bar_zone(curve, bar_length_arcsec, notes)
+            flagged_bar = curve is not before
+        # the advice to flag the bar zone is done when the bar was flagged
+        notes.extend(f"rotation curve: {n}" for n in rings.notes
+                     if "skipped" not in n
+                     and not (flagged_bar and "with_flags" in n))
     models = None if rc.model == "best" else (rc.model,)
     fits = (fit_curve_models(curve) if models is None
             else fit_curve_models(curve, models=models))

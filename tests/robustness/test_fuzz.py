@@ -327,3 +327,52 @@ def test_fuzz_region_reader(text, suffix):
 
 # -- regressions found by the fuzzer ----------------------------------------------
 # (each one a former crash; the reader now answers with a GyrometerError)
+
+
+def test_regression_unparsable_card_is_an_input_file_error():
+    # found by test_fuzz_cube_reader: a NUL byte inside a string value made
+    # astropy's HDUList.fileinfo raise ValueError("Unparsable card") from
+    # the truncation check of gyrometer.core.fitsio._open
+    from gyrometer.core.errors import InputFileError
+    from gyrometer.core.fitsio import load_cube, open_data
+
+    data = bytearray(_BASE_CUBE)
+    _set_card(data, "CTYPE1", "'\x00RA---TAN'", 0)
+    path = _fresh(".fits", bytes(data))
+    for reader in (load_cube, open_data):
+        with pytest.raises(InputFileError, match="invalid FITS header"):
+            reader(path)
+
+
+def _open_paths(info) -> set[str]:
+    """Files this process holds open (Linux /proc), else the astropy file
+    objects still open in the traceback's frames."""
+    fd_dir = Path("/proc/self/fd")
+    if fd_dir.is_dir():
+        paths = set()
+        for fd in fd_dir.iterdir():
+            try:
+                paths.add(os.readlink(fd))
+            except OSError:
+                pass
+        return paths
+    from astropy.io.fits.file import _File
+    paths, tb = set(), info.tb
+    while tb is not None:
+        for value in tb.tb_frame.f_locals.values():
+            if isinstance(value, _File) and not value.closed:
+                paths.add(str(value.name))
+        tb = tb.tb_next
+    return paths
+
+
+def test_regression_failed_open_leaves_no_file_open():
+    # astropy leaves the file open when fits.open fails part way (the
+    # half-built HDU list lives on in the traceback); the reader closes it
+    from gyrometer.core.errors import InputFileError
+    from gyrometer.core.fitsio import load_cube
+
+    path = _fresh(".fits", _BASE_CUBE[:1000])
+    with pytest.raises(InputFileError) as info:
+        load_cube(path)
+    assert str(path.resolve()) not in _open_paths(info)
