@@ -32,7 +32,7 @@ from .settings import AppSettings
 from .tasks import TaskRunner
 from .undo import EditState, StateCommand
 
-__all__ = ["Controller", "LIVE_DELAY_MS", "ROUTES", "display_maps"]
+__all__ = ["Controller", "LIVE_DELAY_MS", "ROUTES"]
 
 #: How a cube becomes a measurement: emission-line moment maps, or the
 #: summed spectra of the slits of an absorption-line cube.
@@ -806,7 +806,7 @@ class Controller(QObject):
     def _open_session(self, session, title: str, after) -> bool:
         from gyrometer.core import pipeline
         stellar = self._session_stellar(session)
-        if session.input.kind == "cube" and stellar is not None:
+        if stellar is not None:
             return self._open_absorption_session(session, stellar, title, after)
 
         def work(progress, cancel):
@@ -859,31 +859,17 @@ class Controller(QObject):
     # session sections of the other routes (read from core's Session)
     # ------------------------------------------------------------------
     @staticmethod
-    def _session_value(session, cls):
-        """``(field name, value)`` of the session field holding a ``cls``."""
-        for f in fields(session):
-            value = getattr(session, f.name)
-            if isinstance(value, cls):
-                return f.name, value
-        return None, None
-
-    @staticmethod
     def _session_radial(session):
+        """The session's radial settings (defaults when it has none)."""
         from gyrometer.core.radial import RadialSettings
-        value = Controller._session_value(session, RadialSettings)[1]
-        return value if value is not None else RadialSettings()
+        return session.radial if session.radial is not None else RadialSettings()
 
     @staticmethod
     def _session_stellar(session):
-        """The session's absorption-route settings, or None (emission route)."""
-        from gyrometer.core.stellar import StellarSettings
-        name, value = Controller._session_value(session, StellarSettings)
-        if value is None:
+        """The session's absorption-route settings, or None (other routes)."""
+        if session.input.kind != "absorption":
             return None
-        route = getattr(session, "route", None) or getattr(session.input, "route", None)
-        if route is not None and "absorption" not in str(route).lower():
-            return None
-        return value
+        return session.absorption.stellar
 
     @staticmethod
     def _default_stellar():
@@ -891,31 +877,28 @@ class Controller(QObject):
         return StellarSettings()
 
     def _with_routes(self, session):
-        """``session`` carrying the radial settings and the cube route."""
-        from gyrometer.core.radial import RadialSettings
-        from gyrometer.core.stellar import StellarSettings
+        """``session`` carrying the radial settings and the cube's route, so
+        that :func:`gyrometer.core.pipeline.run_session` measures what the
+        window shows."""
         changes = {}
-        name = self._session_value(session, RadialSettings)[0]
-        if name is not None and self.radial_settings is not None:
-            changes[name] = self.radial_settings
+        if self.radial_settings is not None and (session.radial is not None
+                                                 or self.radial is not None):
+            changes["radial"] = self.radial_settings   # [radial] enabled
         if self.route == "absorption":
-            name = self._session_value(session, StellarSettings)[0]
-            if name is None:
-                name = next((f.name for f in fields(session)
-                             if f.name in ("stellar", "absorption")), None)
-            if name is not None:
-                changes[name] = self.stellar_settings or self._default_stellar()
-            if "route" in {f.name for f in fields(session)}:
-                changes["route"] = "absorption"
+            changes["input"] = replace(session.input, kind="absorption")
+            changes["absorption"] = replace(
+                session.absorption,
+                stellar=self.stellar_settings or self._default_stellar())
+        elif self.route == "emission" and session.input.kind == "absorption":
+            changes["input"] = replace(session.input, kind="cube")
         return session.with_(**changes) if changes else session
 
     @property
     def session_knows_absorption(self) -> bool:
-        """True when core's session schema holds the absorption route (so a
-        saved session re-runs through the slit spectra)."""
-        from gyrometer.core.session import Session
-        names = {f.name for f in fields(Session)}
-        return bool(names & {"stellar", "absorption"})
+        """True: core's session schema holds the absorption route, so a
+        saved session re-runs through the slit spectra."""
+        from gyrometer.core.session import ROUTES as SESSION_ROUTES
+        return "absorption" in SESSION_ROUTES
 
     # ------------------------------------------------------------------
     # the absorption-line route (background)
@@ -923,9 +906,9 @@ class Controller(QObject):
     def open_absorption(self, vsys_kms: float | None = None, settings=None) -> bool:
         """Show the open cube for the absorption-line route.
 
-        The map view shows the cube's mean over all channels (a display
-        only; the continuum that enters ``<X>`` is computed by core when the
-        slits are measured) with the session's geometry, or a starting
+        The map view shows core's continuum image of the cube
+        (:func:`gyrometer.core.pipeline.continuum_maps`) with the session's
+        geometry, or a starting
         guess whose systemic velocity is ``vsys_kms`` (optical cz, km/s),
         and slits. :meth:`run_absorption` then measures.
         """
@@ -936,9 +919,11 @@ class Controller(QObject):
             Path(self.source_path or "cube.fits"), cube)
         stellar = settings or self.stellar_settings or self._default_stellar()
 
+        base = base.with_(tracer="stars", input=replace(base.input, kind="absorption"),
+                          absorption=replace(base.absorption, stellar=stellar))
+
         def work(progress, cancel):
-            progress(0, 1, "mean image of the cube")
-            return self._absorption_state(base, cube, vsys_kms)
+            return self._absorption_state(base, cube, vsys_kms, progress, cancel)
 
         def done(result):
             maps, geometry, slits = result
@@ -949,8 +934,10 @@ class Controller(QObject):
         return self._start("Absorption-line cube", work, done)
 
     @staticmethod
-    def _absorption_state(session, cube, vsys_kms):
-        maps = display_maps(cube)
+    def _absorption_state(session, cube, vsys_kms, progress, cancel):
+        from gyrometer.core import pipeline
+        progress(0, 1, "continuum image")
+        maps = pipeline.maps_for(cube, session, progress=progress, cancel=cancel)
         geometry = session.geometry
         if geometry is None:
             geometry = Controller._starting_geometry(maps)
@@ -966,7 +953,8 @@ class Controller(QObject):
         def work(progress, cancel):
             data, _ = pipeline.load_inputs(session.input, tracer=session.tracer,
                                            progress=progress, cancel=cancel)
-            return (data,) + self._absorption_state(session, data, None)
+            return (data,) + self._absorption_state(session, data, None,
+                                                    progress, cancel)
 
         def done(result):
             data, maps, geometry, slits = result
@@ -1077,10 +1065,6 @@ class Controller(QObject):
         if self.maps is None:
             return False
         from gyrometer.core import pipeline
-        if self.route == "absorption" and not self.session_knows_absorption:
-            self.status.emit("The full run of the absorption route is not "
-                             "available yet; use Measure from slit spectra")
-            return False
         session = self.current_session()
         state = self.edit_state()
         key = self._state_key()
@@ -1103,6 +1087,12 @@ class Controller(QObject):
             self.dynamics_changed.emit(self.dynamics)
             self.checks_changed.emit(result)
             self._mark_made("full", key)
+            absorption = getattr(result, "absorption", None)
+            if absorption is not None and self.route == "absorption":
+                self.absorption = absorption
+                self._mark_made("absorption", key)
+                self.absorption_changed.emit(absorption)
+                self._remeasure()
             if radial_result is not None:
                 self.radial = radial_result
                 self._mark_made("radial", key)
@@ -1169,31 +1159,6 @@ class Controller(QObject):
             self.status.emit(f"Wrote {len(paths)} files to {folder}")
 
         return self._start("Export results", work, done)
-
-def display_maps(cube):
-    """A map set that lets the map view show a cube of the absorption route.
-
-    Its intensity is the mean of each spaxel over all its finite channels
-    (a picture to place slits on; the continuum of the measurement is
-    computed by :func:`gyrometer.core.stellar.measure_absorption`). It has
-    no velocity field (NaN).
-    """
-    from gyrometer.core.dataset import MapSet
-    total = np.zeros(cube.spatial_shape)
-    count = np.zeros(cube.spatial_shape)
-    n = cube.shape[0]
-    for start in range(0, n, 64):  # a memory-mapped cube is read in blocks
-        block = np.asarray(cube.data[start:start + 64], dtype=float)
-        finite = np.isfinite(block)
-        total += np.where(finite, block, 0.0).sum(axis=0)
-        count += finite.sum(axis=0)
-    image = np.full(cube.spatial_shape, np.nan)
-    np.divide(total, count, out=image, where=count > 0)
-    return MapSet(intensity=image, velocity_kms=np.full(cube.spatial_shape, np.nan),
-                  wcs=cube.wcs.celestial, intensity_unit=cube.unit or "",
-                  name=cube.name or "", tracer="stars",
-                  psf_fwhm_arcsec=getattr(cube, "psf_fwhm_arcsec", None))
-
 
 def sample_path() -> Path | None:
     """The sample map set LBDP-037 shipped in ``sample_cubes/``, if present."""

@@ -90,7 +90,8 @@ def format_radial(result) -> str:
     if weak:
         text += (f"<br><small>{weak} annuli set mainly by the regulariser "
                  "(drawn dashed)</small>")
-    text += "".join(f"<br><small>\u26a0 {w}</small>" for w in result.warnings)
+    text += "".join(f"<br><small>\u26a0 {w}</small>" for w in result.warnings
+                    if "regulariser" not in w)   # said above
     return text
 
 

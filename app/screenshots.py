@@ -3,7 +3,9 @@
 Opens the synthetic sample galaxy LBDP-037, sets its distance (30 Mpc, from
 the sample's truth file), runs the full measurement and grabs the window:
 the map with slits and the live fit, the rotation curve and resonances, the
-uncertainty budget, the cube's moment-map dialog and the method notes. Use a
+uncertainty budget, the pattern speed against radius, the cube's moment-map
+dialog and the method notes; then a small synthetic absorption-line cube
+(made on the fly, not shipped) measured through its slit spectra. Use a
 real X server for faithful fonts::
 
     xvfb-run -a -s "-screen 0 1400x900x24" env QT_QPA_PLATFORM=xcb \\
@@ -45,6 +47,42 @@ def _save(widget, path: Path) -> None:
                 256, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE)
         small.save(path, optimize=True)
     print(f"wrote {path} ({path.stat().st_size // 1024} KB)")
+
+
+def _absorption_shot(app, window, folder: Path, out: Path) -> None:
+    """Measure a small synthetic absorption-line cube through its slit
+    spectra and grab the window with the slit-spectrum panel."""
+    import numpy as np
+
+    from gyrometer.core.fitsio import open_data, write_cube
+    from gyrometer.core.slits import SlitSet
+    from gyrometer.core.stellar import StellarSettings
+    from gyrometer.core.synthetic import barred_model
+    from gyrometer.core.synthetic_stellar import make_absorption_cube
+
+    from .controller import Controller
+
+    model = barred_model(name="LBDP-037", shape=(40, 40), pixel_scale_arcsec=2.5,
+                         dispersion_kms=80.0, noise_frac=0.02)
+    cube, truth, scene = make_absorption_cube(model, rng=np.random.default_rng(37))
+    path = folder / "LBDP-037_stellar_cube.fits"
+    write_cube(path, cube)
+    c = window.controller
+    c.cube = open_data(path)
+    c.source_path = str(path)
+    c.pending_session = Controller._session_for(path, c.cube)
+    c.stellar_settings = StellarSettings(n_mc=8, continuum_band_A=scene.continuum_band_A)
+    c.open_absorption(truth.geometry.vsys_kms)
+    _wait(app, c)
+    c.set_geometry(truth.geometry, "geometry of the model")
+    c.set_slits(SlitSet.generate(6, 7.0, 6.0, 48.0), "six slits")
+    c.run_absorption()
+    _wait(app, c)
+    c.select_slit(4)
+    window.centralWidget().setSizes([430, 700])   # room for the spectra
+    window.tabs.setCurrentWidget(window.spectrum_frame)
+    _wait(app, c)
+    _save(window, out / "slit-spectra.png")
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -100,6 +138,12 @@ def main(argv: list[str] | None = None) -> int:
         _wait(app, c)
         _save(window.tabs, out / "pattern-speed-and-budget.png")
 
+        window.tabs.setCurrentWidget(window.radial_frame)
+        window.radial_view.lam.setCurrentText("0.1")
+        window.radial_view.run()
+        _wait(app, c)
+        _save(window.tabs, out / "pattern-speed-against-radius.png")
+
         cube_path = sample.with_name("LBDP-011_halpha_cube.fits")
         if cube_path.is_file():
             from gyrometer.core.fitsio import open_data
@@ -112,6 +156,7 @@ def main(argv: list[str] | None = None) -> int:
         _wait(app, c)
         _save(window._help, out / "method-notes.png")
         window._help.close()
+        _absorption_shot(app, window, Path(cfg), out)
         if errors:
             print("errors shown:", *errors, sep="\n  ", file=sys.stderr)
         window.close()

@@ -51,7 +51,7 @@ class QtSlitSpectrumView(QWidget):
         self.index = -1
         self.spectrum_plot = pg.PlotWidget(background="w")
         sp = self.spectrum_plot.getPlotItem()
-        sp.setTitle("Summed spectrum of the slit and best fit")
+        sp.setTitle("Slit spectrum and fit")
         sp.setLabel("left", "flux")
         sp.showGrid(x=True, y=True, alpha=0.2)
         sp.addLegend(offset=(-10, 10))
@@ -67,7 +67,7 @@ class QtSlitSpectrumView(QWidget):
         fp.setLabel("bottom", "\u27e8X\u27e9 (arcsec)")
         fp.setLabel("left", "\u27e8V\u27e9 \u2212 V<sub>sys</sub> (km/s)")
         fp.showGrid(x=True, y=True, alpha=0.2)
-        self.fit_plot.setMinimumWidth(220)
+        self.fit_plot.setMinimumWidth(160)
         self.data_curve = sp.plot([], [], pen=pg.mkPen(_DATA, width=1), name="slit sum")
         self.model_curve = sp.plot([], [], pen=pg.mkPen(_MODEL, width=1.6),
                                    name="best fit")
@@ -89,7 +89,7 @@ class QtSlitSpectrumView(QWidget):
         left.addWidget(self.spectrum_plot, 3)
         left.addWidget(self.residual_plot, 1)
         plots = QHBoxLayout()
-        plots.addLayout(left, 3)
+        plots.addLayout(left, 5)
         plots.addWidget(self.fit_plot, 2)
         row = QHBoxLayout()
         row.addWidget(self.run_button)

@@ -54,6 +54,8 @@ __all__ = [
     "budget",
     "rotation_curve",
     "resonances",
+    "radial",
+    "absorption",
     "run",
     "export",
     "load_recipe",
@@ -215,6 +217,40 @@ def resonances(curve_fit, omega_p, *, draws: int = 1000, seed: int = 20261201,
     return resonance_budget(curve_fit, omega_p,
                             rng=np.random.default_rng(seed), n_draws=int(draws),
                             distance_mpc=distance_mpc)
+
+
+def radial(maps, geometry: DiskGeometry, slits, *, seed: int = 20261201,
+           progress=None, cancel=None, **settings):
+    """Pattern speed against radius (:func:`gyrometer.core.radial.measure_radial`).
+
+    ``settings`` are fields of :class:`gyrometer.core.radial.RadialSettings`
+    (``n_annuli=``, ``lam=``, ``n_mc=`` ...); the Monte Carlo uses
+    ``numpy.random.default_rng(seed)``.
+    """
+    import numpy as np
+
+    from .radial import RadialSettings, measure_radial
+
+    return measure_radial(maps, geometry, slits, RadialSettings(**settings),
+                          rng=np.random.default_rng(seed), progress=progress,
+                          cancel=cancel)
+
+
+def absorption(cube, geometry: DiskGeometry, slits, *, seed: int = 20261201,
+               progress=None, cancel=None, **settings):
+    """Pattern speed from the slit spectra of an absorption-line cube
+    (:func:`gyrometer.core.stellar.measure_absorption`).
+
+    ``settings`` are fields of :class:`gyrometer.core.stellar.StellarSettings`
+    (``fit_window_A=``, ``continuum_band_A=``, ``n_mc=`` ...).
+    """
+    import numpy as np
+
+    from .stellar import StellarSettings, measure_absorption
+
+    return measure_absorption(cube, geometry, slits, StellarSettings(**settings),
+                              rng=np.random.default_rng(seed),
+                              progress=progress, cancel=cancel)
 
 
 def run(recipe, *, draws: int | None = None, seed: int | None = None,

@@ -305,7 +305,8 @@ def pa_figure(sensitivity, *, geometry=None, title: str = ""):
 # -- rotation curve and resonances ------------------------------------------------
 def rotation_figure(curve_fit, *, omega_p=None, resonances=None,
                     bar_length_arcsec: float | None = None,
-                    distance_mpc: float | None = None, title: str = ""):
+                    distance_mpc: float | None = None, title: str = "",
+                    curve=None):
     """Rotation curve and the resonance diagram.
 
     Top: the rotation-curve points and the smooth model. Bottom:
@@ -324,11 +325,14 @@ def rotation_figure(curve_fit, *, omega_p=None, resonances=None,
         Deprojected bar semi-length.
     distance_mpc : float, optional
         Radii in kpc and frequencies in km/s/kpc when given.
+    curve : RotationCurve, optional
+        The points to draw (default: those the model was fitted to); its
+        flagged points (beam smearing, inside the bar) are open symbols.
     """
     from .frequencies import frequency_curves
     from .geometry import kpc_per_arcsec
 
-    data = getattr(curve_fit, "data", None)
+    data = curve if curve is not None else getattr(curve_fit, "data", None)
     r_lo, r_hi = getattr(curve_fit, "r_range_arcsec", (0.0, 1.0))
     r_max = max(r_hi, bar_length_arcsec or 0.0) * 1.05
     r = np.linspace(max(r_max * 1e-3, 1e-3), r_max, 400)
@@ -533,7 +537,7 @@ def _rotation_of(result):
                            resonances=result.resonances,
                            bar_length_arcsec=bar,
                            distance_mpc=result.session.geometry.distance_mpc,
-                           title=result.name)
+                           title=result.name, curve=result.rotation_curve)
 
 
 def _radial_of(result):

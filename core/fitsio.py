@@ -33,6 +33,7 @@ Every user fault raises a subclass of
 from __future__ import annotations
 
 import hashlib
+import math
 import os
 import warnings
 from pathlib import Path
@@ -152,6 +153,7 @@ def _open(path: Path) -> fits.HDUList:
     if not head.startswith(b"SIMPLE  ="):
         raise InputFileError("not a FITS file (no SIMPLE card at the start)",
                              path=str(path))
+    _scan_structure(path)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -185,6 +187,123 @@ def _open(path: Path) -> fits.HDUList:
                 f"file has {size}", path=str(path), hdu=index,
                 hint="the download or copy was incomplete")
     return hdul
+
+
+_BITPIX_VALUES = (8, 16, 32, 64, -32, -64)
+_MAX_HEADER_BLOCKS = 2000  # 72 000 cards: far beyond any real header
+
+
+def _card_int(cards: dict[str, bytes], key: str, path: Path, index: int,
+              default: int | None = None) -> int:
+    raw = cards.get(key)
+    if raw is None:
+        if default is None:
+            raise InputFileError(f"mandatory keyword {key} is missing",
+                                 path=str(path), hdu=index, keyword=key,
+                                 hint="the header breaks the FITS standard")
+        return default
+    text = raw.split(b"/", 1)[0].strip()
+    try:
+        return int(text.decode("ascii"))
+    except (UnicodeDecodeError, ValueError):
+        raise InputFileError(f"{key} is not an integer "
+                             f"({text.decode('latin-1')!r})", path=str(path),
+                             hdu=index, keyword=key,
+                             hint="the header breaks the FITS standard"
+                             ) from None
+
+
+def _scan_structure(path: Path) -> None:
+    """Check every HDU's structural keywords before astropy parses the file.
+
+    FITS Standard 4.0 (Sect. 4.4.1): BITPIX is one of 8, 16, 32, 64, -32,
+    -64; 0 <= NAXIS <= 999; every NAXISn >= 0; PCOUNT >= 0 and GCOUNT >= 1;
+    the data take |BITPIX|/8 GCOUNT (PCOUNT + NAXIS1 ... NAXISm) bytes
+    after the header (Sect. 4.4.1.1, eq. 2). Headers are read as raw
+    2880-byte blocks, so absurd values (NAXIS = 10^8, GCOUNT < 0) are
+    refused with a message naming the keyword instead of reaching code
+    that would loop or allocate for them; data reaching beyond the end of
+    the file mean a truncated file. Blocks after an HDU that do not start
+    an extension are skipped, as astropy skips them, so that any later
+    extension header is checked too.
+    """
+    size = path.stat().st_size
+    offset = index = 0
+    with open(path, "rb") as handle:
+        while offset < size:
+            handle.seek(offset)
+            cards: dict[str, bytes] = {}
+            blocks = 0
+            ended = False
+            while not ended:
+                block = handle.read(2880)
+                if blocks == 0 and index > 0 and not block.startswith(b"XTENSION"):
+                    break  # not an extension: look in the next block
+                if len(block) < 2880:
+                    raise InputFileError(
+                        f"truncated file: the header of HDU {index} is cut "
+                        "short (no END card)", path=str(path), hdu=index,
+                        hint="the download or copy was incomplete")
+                blocks += 1
+                for k in range(0, 2880, 80):
+                    card = block[k:k + 80]
+                    key = card[:8].decode("ascii", "replace").strip()
+                    if key == "END":
+                        ended = True
+                        break
+                    if key in ("SIMPLE", "XTENSION") and (blocks, k) != (1, 0):
+                        raise InputFileError(
+                            f"the header of HDU {index} has no END card "
+                            "before the next header", path=str(path),
+                            hdu=index, keyword="END")
+                    if card[8:10] == b"= " and key not in cards:
+                        cards[key] = card[10:]
+                if blocks > _MAX_HEADER_BLOCKS:
+                    raise InputFileError(f"the header of HDU {index} has no "
+                                         "END card", path=str(path), hdu=index)
+            if not ended:
+                # bytes that are no header (astropy skips them, looking for
+                # a later XTENSION block): check whatever it would find
+                offset += 2880
+                continue
+            bitpix = _card_int(cards, "BITPIX", path, index)
+            if bitpix not in _BITPIX_VALUES:
+                raise InputFileError(
+                    f"BITPIX = {bitpix} is not a FITS data type (8, 16, 32, "
+                    "64, -32 or -64)", path=str(path), hdu=index,
+                    keyword="BITPIX")
+            naxis = _card_int(cards, "NAXIS", path, index)
+            if not 0 <= naxis <= 999:
+                raise InputFileError(f"NAXIS = {naxis} is outside 0-999",
+                                     path=str(path), hdu=index, keyword="NAXIS")
+            lengths = [_card_int(cards, f"NAXIS{a}", path, index)
+                       for a in range(1, naxis + 1)]
+            for a, n in enumerate(lengths, start=1):
+                if n < 0:
+                    raise InputFileError(f"NAXIS{a} = {n} is negative",
+                                         path=str(path), hdu=index,
+                                         keyword=f"NAXIS{a}")
+            pcount = _card_int(cards, "PCOUNT", path, index, 0)
+            gcount = _card_int(cards, "GCOUNT", path, index, 1)
+            if pcount < 0 or gcount < 1:
+                raise InputFileError(
+                    f"PCOUNT = {pcount} / GCOUNT = {gcount} are invalid "
+                    "(PCOUNT >= 0, GCOUNT >= 1)", path=str(path), hdu=index,
+                    keyword="PCOUNT/GCOUNT")
+            if naxis == 0:
+                nbytes = 0
+            else:
+                groups = lengths[0] == 0 and cards.get("GROUPS", b"").strip()[:1] == b"T"
+                count = math.prod(lengths[1:] if groups else lengths)
+                nbytes = abs(bitpix) // 8 * gcount * (pcount + count)
+            data_start = offset + 2880 * blocks
+            if data_start + nbytes > size:
+                raise InputFileError(
+                    f"truncated file: HDU {index} needs {data_start + nbytes} "
+                    f"bytes but the file has {size}", path=str(path),
+                    hdu=index, hint="the download or copy was incomplete")
+            offset = data_start + -(-nbytes // 2880) * 2880
+            index += 1
 
 
 def _close_leaked(exc: BaseException) -> None:
@@ -287,9 +406,18 @@ def _read_array(hdu: Any, path: Path, label: str,
     by channel block into a float32 array, never through float64 whole.
     """
     header = hdu.header
+    for key in ("BSCALE", "BZERO"):
+        if key in header and _header_number(header, key) is None:
+            raise HeaderError(f"{key} is not a finite number",
+                              path=str(path), hdu=label, keyword=key,
+                              value=str(header[key]))
     scaled = ("BSCALE" in header and float(header["BSCALE"]) != 1.0) or (
         "BZERO" in header and float(header["BZERO"]) != 0.0)
     blank = header.get("BLANK") if int(header.get("BITPIX", -32)) > 0 else None
+    if blank is not None and (isinstance(blank, bool)
+                              or not isinstance(blank, int)):
+        raise HeaderError("BLANK must be an integer", path=str(path),
+                          hdu=label, keyword="BLANK", value=str(blank))
     try:
         raw = hdu.data  # raw values: the file is opened without scaling
     except Exception as exc:
@@ -450,10 +578,12 @@ def _spectral_from_wcs(wcs: WCS, header: fits.Header, n_channels: int,
     rest_value, rest_unit = None, ""
     restfrq = float(wcs.wcs.restfrq or 0.0)
     restwav = float(wcs.wcs.restwav or 0.0)
+    restfrq = restfrq if np.isfinite(restfrq) else 0.0
+    restwav = restwav if np.isfinite(restwav) else 0.0
     if not restfrq:
-        restfrq = float(header.get("RESTFREQ", 0.0) or 0.0)
+        restfrq = _header_number(header, "RESTFREQ", 0.0)
     if not restwav:
-        restwav = float(header.get("RESTWAVE", 0.0) or 0.0)
+        restwav = _header_number(header, "RESTWAVE", 0.0)
     wavelength_like = family in ("WAVE", "AWAV", "VOPT", "ZOPT")
     if restwav > 0 and (wavelength_like or restfrq <= 0):
         rest_value, rest_unit = restwav * 1e10, "Angstrom"  # RESTWAV is in m
@@ -467,15 +597,36 @@ def _spectral_from_wcs(wcs: WCS, header: fits.Header, n_channels: int,
                         air=(family == "AWAV"), specsys=specsys)
 
 
-def _psf_arcsec(header: fits.Header, *more: fits.Header) -> float | None:
+def _header_number(header: Any, key: str,
+                   default: float | None = None) -> float | None:
+    """A header value as a finite float; ``default`` when it is absent,
+    not a number (e.g. a string) or not finite."""
+    try:
+        value = header.get(key, None)
+    except Exception:  # noqa: BLE001 - an unparsable card
+        return default
+    if value is None or isinstance(value, bool):
+        return default
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        return default
+    return number if np.isfinite(number) else default
+
+
+def _psf_arcsec(header: Any, *more: Any) -> float | None:
+    """PSF FWHM (arcsec) from BMAJ (deg) or PSF_FWHM-like keywords of
+    headers or plain keyword mappings; None if none is usable."""
     for h in (header, *more):
         if h is None:
             continue
-        if "BMAJ" in h and float(h["BMAJ"]) > 0:
-            return float(h["BMAJ"]) * 3600.0  # BMAJ is in degrees
+        bmaj = _header_number(h, "BMAJ")
+        if bmaj is not None and bmaj > 0:
+            return bmaj * 3600.0  # BMAJ is in degrees
         for key in ("PSF_FWHM", "PSFFWHM", "SEEING", "FWHM"):
-            if key in h and float(h[key]) > 0:
-                return float(h[key])
+            value = _header_number(h, key)
+            if value is not None and value > 0:
+                return value
     return None
 
 
@@ -904,8 +1055,7 @@ dispersion_err : path-like, optional
         dispersion_err_kms=arrays["dispersion_err"],
         intensity_unit=str(int_header.get("BUNIT", "")).strip(), name=name,
         tracer=tracer_value,
-        psf_fwhm_arcsec=_psf_arcsec(fits.Header(meta) if meta else None,
-                                    maps["intensity"][2]),
+        psf_fwhm_arcsec=_psf_arcsec(meta or None, maps["intensity"][2]),
         velocity_convention=vconv,
         specsys=str(meta.get("SPECSYS", "") or "").strip(),
         provenance=tuple(provenance))

@@ -368,6 +368,15 @@ def results_to_json(table) -> str:
 
     ``rows`` hold one object per galaxy with the columns of :data:`COLUMNS`;
     missing numbers are ``null``. Units are those listed in ``columns``.
+
+    Additions within version 1 (keys were only added, so readers of the
+    first layout keep working): ``route`` may be ``"absorption"``;
+    ``meta.details`` may hold ``route``, ``radial`` (annulus edges and
+    Omega_p(R) with errors, resolution, regularisation, lam; see
+    :func:`gyrometer.core.pipeline.radial_details`), ``absorption``
+    (template, settings and one entry per slit spectrum fit) and
+    ``rotation_curve_flagged`` (radii of rings left out of the model and
+    why).
     """
     meta = dict(table.meta.get("gyrometer", {}))
     meta.pop("schema", None)

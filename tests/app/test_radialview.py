@@ -79,7 +79,11 @@ def test_radial_tab_shows_two_pattern_speeds_from_core(two_open, two_pattern_fil
 
 
 def test_radial_settings_reach_core_and_bad_strength_is_reported(two_open, idle,
-                                                                 errors):
+                                                                 errors, monkeypatch):
+    from PySide6.QtWidgets import QMessageBox
+    shown = []
+    monkeypatch.setattr(QMessageBox, "critical",
+                        staticmethod(lambda parent, title, text: shown.append(text)))
     window = two_open
     c = window.controller
     view = window.radial_view
@@ -94,9 +98,17 @@ def test_radial_settings_reach_core_and_bad_strength_is_reported(two_open, idle,
     assert c.radial.vsys_offset_kms is not None
     # the settings are kept with the session the window saves
     assert c.radial_settings.n_annuli == 6
+    assert c.current_session().radial == c.radial_settings
+    # the full run measures it too ([radial] in the session) and is shown
+    c.run_full()
+    idle()
+    assert not errors, errors
+    assert c.pipeline_result.radial is not None
+    assert c.radial is c.pipeline_result.radial and c.radial.n_annuli == 6
     view.lam.setCurrentText("strong")
     assert not view.run()
     assert errors and "lam" in errors[-1][1]
+    assert len(shown) == 1 and "Traceback" not in shown[0]
     assert c.radial.n_annuli == 6                 # the shown result is kept
 
 
@@ -119,13 +131,13 @@ def test_full_run_results_are_greyed_after_an_edit_and_current_after_undo(
     assert c.stale == frozenset({"full", "radial"})
     for frame in (window.dynamics_frame, window.checks_frame, window.radial_frame):
         assert frame.stale
-        assert frame.note.isVisibleTo(window)
+        assert not frame.note.isHidden()
         assert frame.content.graphicsEffect().isEnabled()
     # the live result is never stale
     assert c.measurement is not None
     c.undo_stack.undo()
     assert c.stale == frozenset()
     assert not window.dynamics_frame.stale
-    assert not window.dynamics_frame.note.isVisibleTo(window)
+    assert window.dynamics_frame.note.isHidden()
     c.update_geometry("turn", pa_deg=c.geometry.pa_deg + 2.0)
     assert window.checks_frame.stale and window.radial_frame.stale

@@ -239,3 +239,13 @@ def test_console_script_is_installed():
     done = subprocess.run([str(script), "--version"], capture_output=True,
                           text=True, timeout=60)
     assert done.returncode == 0 and done.stdout.startswith("gyrometer ")
+
+
+@pytest.mark.parametrize("name", ["LBDP-023", "LBDP-037"])
+def test_sample_recipes_check(name, capsys):
+    root = Path(__file__).resolve().parents[2] / "sample_cubes"
+    assert main(["check", str(root / f"{name}.recipe.toml")]) == 0
+    out = capsys.readouterr().out
+    assert "OK" in out and name in out
+    if name == "LBDP-023":
+        assert "pattern speed against radius: one annulus per slit pair" in out

@@ -153,3 +153,34 @@ def test_unknown_format_and_existing_files_are_refused(tmp_path, scene):
     save_figure(fig, tmp_path / "fit.pdf")
     with pytest.raises(OutputError, match="exists"):
         save_figure(fig, tmp_path / "fit.pdf")
+
+
+def test_radial_figure_draws_the_steps_over_omega_and_lindblad_curves(scene):
+    from gyrometer.core.figures import radial_figure
+    from gyrometer.core.radial import RadialSettings, measure_radial
+
+    radial = measure_radial(scene["maps"], scene["geometry"], scene["slits"],
+                            RadialSettings(n_annuli=3), warn=False)
+    fig = radial_figure(radial, curve_fit=scene["fit"],
+                        omega_p=(0.9 * scene["om"], scene["om"],
+                                 1.1 * scene["om"]))
+    ax = fig.axes[0]
+    labels = [line.get_label() for line in ax.lines]
+    for needed in (r"$\Omega$", r"$\Omega\pm\kappa/2$", r"$\Omega_p(R)$",
+                   r"single $\Omega_p$"):
+        assert needed in labels
+    step = ax.lines[labels.index(r"$\Omega_p(R)$")]
+    x, y = step.get_data()
+    # one flat segment per annulus at its value, in km/s/kpc (D = 20 Mpc)
+    scale = 20.0 * 1e3 / 206264.80624709636  # kpc per arcsec at 20 Mpc
+    np.testing.assert_allclose(y[::2], radial.omega_kms_arcsec / scale)
+    np.testing.assert_allclose(x[-1], radial.edges_arcsec[-1] * scale)
+    # Omega is V/R of the model (Binney & Tremaine 2008, section 3.2.3)
+    omega = ax.lines[labels.index(r"$\Omega$")]
+    xo, yo = omega.get_data()
+    r_arcsec = xo[200] / scale
+    assert yo[200] == pytest.approx(float(scene["fit"].v(r_arcsec)) / r_arcsec
+                                    / scale, rel=1e-9)
+    # without a model only the steps (and no frequency curves) are drawn
+    bare = radial_figure(radial)
+    assert [ln.get_label() for ln in bare.axes[0].lines] == [r"$\Omega_p(R)$"]

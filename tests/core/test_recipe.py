@@ -182,3 +182,48 @@ def test_starter_recipe_has_every_setting_and_loads(tmp_path):
     session = load_recipe(path)
     assert session.geometry is None
     assert session.input.maps == str(data.resolve())
+
+
+@pytest.mark.parametrize("section, text, keyword", [
+    ("radial", 'lam = "strong"', "radial.lam"),
+    ("radial", "edges_arcsec = [10.0, 5.0]", "radial.edges_arcsec"),
+    ("radial", 'regularisation = "smooth"', "radial.regularisation"),
+    ("stellar", "n_hermite = 3", "stellar.n_hermite"),
+    ("stellar", "fit_window_A = [8500.0]", "stellar.fit_window_A"),
+    ("stellar", "mask_ranges_A = [8500.0, 8510.0]", "stellar.mask_ranges_A"),
+    ("stellar", "geometry_draws = 1", "stellar.geometry_draws"),
+])
+def test_bad_radial_and_stellar_settings_name_the_key(tmp_path, section,
+                                                      text, keyword):
+    path = _write(tmp_path, GOOD + f"\n[{section}]\n{text}\n")
+    with pytest.raises(RecipeError) as info:
+        load_recipe(path)
+    assert info.value.keyword == keyword
+    assert "r.toml" in str(info.value)
+
+
+def test_radial_and_stellar_sections_are_read(tmp_path):
+    path = _write(tmp_path, GOOD + """
+[radial]
+enabled = true
+edges_arcsec = [0.0, 10.0, 20.0]
+lam = 0.5
+n_mc = 20
+
+[stellar]
+fit_window_A = [8450.0, 8850.0]
+mask_ranges_A = [[8600.0, 8610.0]]
+template = "tpl.fits"
+geometry_draws = 10
+""")
+    session = load_recipe(path)
+    assert session.radial.edges_arcsec == (0.0, 10.0, 20.0)
+    assert session.radial.lam == 0.5 and session.radial.n_mc == 20
+    st = session.absorption.stellar
+    assert st.fit_window_A == (8450.0, 8850.0)
+    assert st.mask_ranges_A == ((8600.0, 8610.0),)
+    assert st.template == str(tmp_path.resolve() / "tpl.fits")
+    assert session.absorption.geometry_draws == 10
+    # the section is off unless enabled
+    off = load_recipe(_write(tmp_path, GOOD + "\n[radial]\nn_mc = 5\n", "o.toml"))
+    assert off.radial is None

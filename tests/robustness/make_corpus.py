@@ -37,7 +37,7 @@ from astropy.wcs import WCS
 from gyrometer.core import errors as E
 
 __all__ = ["CorpusCase", "TOLERATED", "build_corpus", "build_tolerated",
-           "good_mapset", "good_cube", "good_recipe", "main"]
+           "good_mapset", "good_cube", "good_recipe", "recipe_text", "main"]
 
 # Small sizes keep the whole corpus under a second to build.
 NY = NX = 16
@@ -382,7 +382,7 @@ def _cube_cases(folder: Path) -> list[CorpusCase]:
     add("truncated_data", p, E.InputFileError, "truncated")
 
     p = _truncate(good_cube(folder / "truncated_header.fits"), 1000)
-    add("truncated_header", p, E.InputFileError, "fits")
+    add("truncated_header", p, E.InputFileError, "header of HDU 0 is cut short")
 
     p = folder / "map_2d.fits"
     h = _map_header("Jy/beam", "")
@@ -431,7 +431,7 @@ def _cube_cases(folder: Path) -> list[CorpusCase]:
     p = folder / "bitpix_24.fits"
     good_cube(p)
     _header_card_replace(p, "BITPIX", "BITPIX  =                   24")
-    add("unusual_bitpix_24", p, E.InputFileError, "fits")
+    add("unusual_bitpix_24", p, E.InputFileError, "BITPIX = 24 is not a FITS data type")
 
     p = folder / "singular_pc.fits"
     h = _cube_header()

@@ -130,13 +130,17 @@ _VALUES = st.one_of(
 )
 
 
-def _set_card(data: bytearray, key: str, value: str, occurrence: int) -> None:
+def _set_card(data: bytearray, key: str, value: str, occurrence: int,
+              raw: str | None = None) -> None:
+    """Give the ``occurrence``-th card named ``key`` the value text
+    ``value`` (or replace the whole card by ``raw``)."""
     seen = 0
     for start in range(0, len(data) - 79, 80):
         name = bytes(data[start:start + 8]).decode("latin-1").rstrip()
         if name == key:
             if seen == occurrence:
                 card = f"{key:<8}= {value:>20}" if key != "END" else value
+                card = card if raw is None else raw
                 data[start:start + 80] = card.encode("latin-1", "replace").ljust(80)[:80]
                 return
             seen += 1
@@ -372,7 +376,69 @@ def test_regression_failed_open_leaves_no_file_open():
     from gyrometer.core.errors import InputFileError
     from gyrometer.core.fitsio import load_cube
 
-    path = _fresh(".fits", _BASE_CUBE[:1000])
+    data = bytearray(_BASE_CUBE)
+    _set_card(data, "NAXIS", "24", 0)   # astropy fails looking for NAXIS4
+    path = _fresh(".fits", bytes(data))
     with pytest.raises(InputFileError) as info:
         load_cube(path)
     assert str(path.resolve()) not in _open_paths(info)
+
+
+@pytest.mark.parametrize("key, value", [("BMAJ", "'\x00  0.0005'"),
+                                        ("BMAJ", "'five'"),
+                                        ("RESTFRQ", "'HI line'")])
+def test_regression_text_in_an_optional_number_is_ignored(key, value):
+    # found by the long fuzz run: BMAJ holding text made float() raise
+    # ValueError in gyrometer.core.fitsio._psf_arcsec
+    from gyrometer.core.fitsio import load_cube
+
+    data = bytearray(_BASE_CUBE)
+    _set_card(data, key, value, 0)
+    cube = _only_our_errors(lambda: load_cube(_fresh(".fits", bytes(data))))
+    if not isinstance(cube, GyrometerError):
+        assert cube.psf_fwhm_arcsec is None or cube.psf_fwhm_arcsec > 0
+
+
+@pytest.mark.parametrize("key, value", [("BSCALE", "'two'"), ("BZERO", "'x'")])
+def test_regression_text_in_bscale_or_bzero_is_a_header_error(key, value):
+    from gyrometer.core.errors import GyrometerError as Base
+    from gyrometer.core.fitsio import load_cube
+
+    data = bytearray(_BASE_CUBE)
+    _set_card(data, "OBJECT", "", 0, raw=f"{key:<8}= {value:>20}")  # add it
+    with pytest.raises(Base, match=key):
+        load_cube(_fresh(".fits", bytes(data)))
+
+
+@pytest.mark.parametrize("ops, message", [
+    # NAXIS = 10^8 made astropy look for 10^8 NAXISn keywords (minutes)
+    ([("card", "NAXIS", "100000000", 1)], "NAXIS = 100000000 is outside 0-999"),
+    # a negative GCOUNT made astropy loop
+    ([("card", "GCOUNT", "-32", 1)], "GCOUNT = -32 are invalid"),
+    # an END card lost: the next header was read as part of this one
+    ([("card", "END", "5", 0), ("card", "NAXIS", "1000000", 3)],
+     "no END card before the next header"),
+    # a zero-length image hid a later, absurd extension header
+    ([("card", "NAXIS1", "0", 0), ("card", "NAXIS", "100000000", 3)],
+     "NAXIS = 100000000 is outside 0-999"),
+])
+def test_regression_absurd_structure_is_refused_quickly(ops, message):
+    # found by the long fuzz run of the map-set reader: each took seconds
+    # to minutes and gigabytes inside astropy before failing; the structure
+    # check of gyrometer.core.fitsio now refuses them first (the message
+    # names the keyword)
+    from gyrometer.core.errors import InputFileError
+    from gyrometer.core.fitsio import load_mapset
+
+    path = _fresh(".fits", _mutate(_BASE_MAPS, ops))
+    with pytest.raises(InputFileError, match=message):
+        load_mapset(path)
+
+
+def test_regression_odd_byte_in_a_primary_keyword_of_a_map_set():
+    # found by the long fuzz run: a non-ASCII byte in a primary-header
+    # keyword made fits.Header(dict(header)) raise ValueError in load_mapset
+    from gyrometer.core.fitsio import load_mapset
+
+    path = _fresh(".fits", _mutate(_BASE_MAPS, [("bytes", 242, b"\xaf")]))
+    _only_our_errors(lambda: load_mapset(path))
