@@ -16,7 +16,7 @@ All science is done by :mod:`gyrometer.core`. Long work runs in a
 from __future__ import annotations
 
 import time
-from dataclasses import fields, replace
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
