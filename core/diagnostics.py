@@ -64,6 +64,8 @@ def check_measurement(measurement: TWMeasurement, tracer: str | None = None, *,
     * truncated slits -> DataQualityWarning;
     * gas tracers (Borodina et al. 2023) -> TracerWarning.
 
+    Slits are numbered from 1 in every message, as in the app's slit table.
+
     Parameters
     ----------
     measurement : TWMeasurement
@@ -88,12 +90,12 @@ def check_measurement(measurement: TWMeasurement, tracer: str | None = None, *,
         snr = ig.flux / ig.flux_err
     noisy = np.flatnonzero((np.abs(ig.flux) > 0) & (snr < MIN_SLIT_SNR))
     if noisy.size:
-        out.append((f"slit(s) {', '.join(str(k) for k in noisy)} are dominated by "
+        out.append((f"slit(s) {', '.join(str(k + 1) for k in noisy)} are dominated by "
                     f"noise (flux signal-to-noise below {MIN_SLIT_SNR:g})",
                     DataQualityWarning))
     cut = np.flatnonzero(measurement.used & ig.truncated)
     if cut.size:
-        out.append((f"slit(s) {', '.join(str(k) for k in cut)} are cut by the field "
+        out.append((f"slit(s) {', '.join(str(k + 1) for k in cut)} are cut by the field "
                     "edge or by masked pixels", DataQualityWarning))
     if tracer in GAS_TRACERS:
         out.append((f"tracer '{tracer}': gas may violate continuity; Tremaine-"
@@ -180,7 +182,7 @@ def convergence(maps: MapSet, geometry: DiskGeometry, slits: SlitSet,
         converged = (spread_x <= tol_x) & (spread_v <= tol_v)
     bad = np.flatnonzero(~converged)
     if bad.size:
-        warnings.warn(f"slit(s) {', '.join(str(k) for k in bad)} have not converged "
+        warnings.warn(f"slit(s) {', '.join(str(k + 1) for k in bad)} have not converged "
                       "with slit length: lengthen them or check the data extent",
                       ConvergenceWarning, stacklevel=2)
     return ConvergenceCurves(half_lengths, x, v, omega, converged, float(tolerance))

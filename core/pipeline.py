@@ -985,7 +985,7 @@ def _diagnostics(maps, geometry, slits, notes, progress, cancel):
             if not bool(np.all(conv.converged)):
                 bad = np.flatnonzero(~np.asarray(conv.converged, dtype=bool))
                 notes.append("slit integrals have not converged with slit "
-                             f"length for slit(s) {', '.join(map(str, bad))}"
+                             f"length for slit(s) {', '.join(str(k + 1) for k in bad)}"
                              " (Zou et al. 2019: they must plateau)")
         except FitError as exc:
             notes.append(f"convergence curves: {exc}")

@@ -267,7 +267,9 @@ def _cdf_box_sum(t, a, b):
     plus ``t`` (a trapezoidal density; derived).
     """
     u_ = t + 0.5 * (a + b)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    # b may be subnormal (a strip edge parallel to a pixel axis to within
+    # 1e-300): the unused branches then overflow; np.select picks the right one
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         ab2 = 2.0 * a * b
         r1 = u_ * u_ / ab2
         r2 = (u_ - 0.5 * b) / a
@@ -333,7 +335,7 @@ def _clip_square_area(px, py, planes):
         p_next = poly[rows, nxt]
         inside = d >= 0.0
         crosses = inside != (d_next >= 0.0)
-        with np.errstate(divide="ignore", invalid="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             t = np.where(crosses, d / (d - d_next), 0.0)
         inter = poly + t[..., None] * (p_next - poly)
         cand = np.stack([poly, inter], axis=2).reshape(n_poly, 2 * m, 2)
@@ -362,7 +364,7 @@ def _column_interval(grad, off, lo, hi, j, pad_sign):
     base = g1 * j + off
     lo_v, hi_v = lo - pad - base, hi + pad - base
     flat_g = np.abs(g0) < 1e-12 * (np.abs(g1) + 1e-300)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         ta, tb = lo_v / g0, hi_v / g0
     ok_flat = (lo_v <= 0) & (hi_v >= 0)
     a = np.where(flat_g, np.where(ok_flat, -np.inf, np.inf), np.minimum(ta, tb))

@@ -94,3 +94,27 @@ def test_clean_measurement_has_no_warnings():
         warnings.simplefilter("error")
         m = measure(maps, truth.geometry, SHORT)
     assert m.warnings == ()
+
+
+def test_warnings_number_slits_from_one_as_the_app_table_does():
+    """User-facing slit numbers start at 1 (the app and region files count from 1)."""
+    import numpy as np
+
+    from gyrometer.core.diagnostics import check_measurement
+    from gyrometer.core.geometry import DiskGeometry
+    from gyrometer.core.results import LineFit, SlitIntegrals, TWMeasurement
+
+    n = 3
+    ones = np.ones(n)
+    integrals = SlitIntegrals(
+        offset_arcsec=np.array([-1.0, 0.0, 1.0]), x_mean_arcsec=ones,
+        x_err_arcsec=0.1 * ones, v_mean_kms=ones, v_err_kms=ones,
+        xv_corr=0 * ones, flux=ones, flux_err=np.array([0.1, 0.1, 10.0]),
+        n_pixels=np.array([10, 10, 10]), coverage=ones,
+        truncated=np.array([True, False, False]), half_length_used_arcsec=ones)
+    fit = LineFit(1.0, 0.0, 0.1, 0.1, 0.0, 1.0, 1, "test")
+    geometry = DiskGeometry(10.0, 10.0, 30.0, 45.0)
+    m = TWMeasurement(integrals, fit, np.ones(n, bool), geometry, "maps", 1.0, 0.1)
+    text = " | ".join(check_measurement(m, issue=False))
+    assert "slit(s) 3 are dominated by noise" in text   # the third slit
+    assert "slit(s) 1 are cut by the field" in text     # the first slit

@@ -273,3 +273,15 @@ def test_rotating_wcs_and_position_angle_together_changes_nothing(scene, turn):
                                rtol=1e-6, atol=1e-5)
     assert b.omega_p_kms_arcsec == pytest.approx(a.omega_p_kms_arcsec, rel=1e-5,
                                                  abs=1e-7)
+
+
+@pytest.mark.parametrize("pa", [2.2250738585e-313, 5e-324, 90.0 + 1e-14])
+def test_regression_slit_edges_almost_parallel_to_pixel_rows(pa):
+    # found by hypothesis (tests/core/test_slits.py): a subnormal position
+    # angle made the closed-form pixel fraction overflow in unused branches
+    # (RuntimeWarning turned into an error) in gyrometer.core.slits
+    wcs = _wcs(150.0, 2.0, 0.0, 1.0, False, shape=(24, 24))
+    geometry = DiskGeometry(150.0, 2.0, pa, 45.0)
+    (w,) = slit_weights(SlitSet((Slit(0.0, 2.0, 2.0),)), geometry, wcs, (24, 24))
+    # 4" x 2" strip on 1" pixels, well inside the map: 8 pixels (derived)
+    assert w.inside_area_pix == pytest.approx(8.0, rel=1e-9)
