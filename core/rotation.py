@@ -284,7 +284,8 @@ def load_rotation_curve(path: str | os.PathLike, *,
     error (``v_err``, ``e_v``, ``err`` ...). Units come from the ECSV column
     units, else from a name suffix (``r_kpc``, ``r [arcsec]``), else from
     ``radius_unit`` / ``velocity_unit`` (velocity defaults to km/s; the
-    radius unit has no default).
+    radius unit has no default). The radii must increase strictly down the
+    table: a table out of order is refused, never sorted silently.
 
     Parameters
     ----------
@@ -301,8 +302,10 @@ def load_rotation_curve(path: str | os.PathLike, *,
     InputFileError
         The file does not exist or cannot be read as a table.
     RotationCurveError
-        A column is missing, non-numeric, has the wrong unit, or the values
-        are invalid (see :class:`RotationCurve`).
+        A column is missing, non-numeric, has the wrong unit, the radii do
+        not increase strictly down the table (the message names the column
+        and the first offending row), or the values are invalid (see
+        :class:`RotationCurve`).
     """
     from astropy.table import Table
 
@@ -387,10 +390,32 @@ def load_rotation_curve(path: str | os.PathLike, *,
             raise RotationCurveError(
                 f"column '{col}' has unit {unit}, not a velocity", path=path,
                 keyword=col) from exc
-    order = np.argsort(r_arcsec, kind="stable")
-    return RotationCurve(r_arcsec[order], out[0][order], out[1][order],
+    _check_increasing(values(r_col), r_col, path)
+    return RotationCurve(r_arcsec, out[0], out[1],
                          source=os.path.basename(path),
                          distance_mpc=distance_mpc, path=path)
+
+
+def _check_increasing(r: np.ndarray, column: str, path: str) -> None:
+    """Refuse radii that do not strictly increase down the table.
+
+    A table out of order is not sorted silently: a jumbled or repeated
+    radius usually means rows pasted from two sources or a wrong column,
+    which the user should see. Rows are counted from 1, the first data row
+    after the header. Non-finite radii are left to :class:`RotationCurve`,
+    which names them.
+    """
+    step = np.diff(r)
+    bad = step <= 0                       # NaN compares False: not flagged here
+    if not bad.any():
+        return
+    i = int(np.argmax(bad)) + 1           # index of the offending row
+    what = "repeats" if step[i - 1] == 0 else "is smaller than"
+    raise RotationCurveError(
+        f"radii must be strictly increasing down the table: row {i + 1} "
+        f"({r[i]:g}) {what} row {i} ({r[i - 1]:g})", path=path,
+        keyword=column, value=float(r[i]),
+        hint="sort the table by radius and merge rows with the same radius")
 
 
 # --------------------------------------------------------------------------

@@ -98,9 +98,9 @@ def test_ecsv_with_kpc_radii_is_converted_with_the_distance(tmp_path):
 
 def test_csv_and_whitespace_tables_with_unit_suffixes_or_arguments(tmp_path):
     csv = tmp_path / "rc.csv"
-    csv.write_text("r_arcsec,v_kms,v_err_kms\n3,60,4\n1,20,4\n6,100,4\n")
+    csv.write_text("r_arcsec,v_kms,v_err_kms\n1,20,4\n3,60,4\n6,100,4\n")
     curve = load_rotation_curve(csv)
-    np.testing.assert_allclose(curve.r_arcsec, [1, 3, 6])  # sorted
+    np.testing.assert_allclose(curve.r_arcsec, [1, 3, 6])
     np.testing.assert_allclose(curve.v_kms, [20, 60, 100])
     txt = tmp_path / "rc.txt"
     txt.write_text("# radius vrot err\n0.5 30 5\n1.0 55 5\n1.5 70 5\n")
@@ -129,6 +129,29 @@ def test_reader_errors_name_the_file_and_the_fault(tmp_path):
     dup.write_text("r_arcsec,v_kms,v_err_kms\n1,2,3\n1,3,3\n3,4,3\n")
     with pytest.raises(RotationCurveError, match="strictly increasing"):
         load_rotation_curve(dup)
+
+
+def test_table_out_of_order_is_refused_not_sorted(tmp_path):
+    # radii decreasing at the third data row: refused with the file, the
+    # column, the row and the hint to sort (never sorted silently)
+    table = tmp_path / "jumbled.csv"
+    table.write_text("r_arcsec,v_kms,v_err_kms\n1,20,4\n3,60,4\n2,45,4\n6,100,4\n")
+    with pytest.raises(RotationCurveError) as info:
+        load_rotation_curve(table)
+    text = str(info.value)
+    assert "jumbled.csv" in text and "r_arcsec" in text
+    assert "strictly increasing" in text
+    assert "row 3 (2) is smaller than row 2 (3)" in text
+    assert "sort the table" in text
+    assert info.value.keyword == "r_arcsec" and info.value.value == 2.0
+    # a repeated radius names the repeat; a kpc column is checked as written
+    dup = tmp_path / "repeat.txt"
+    dup.write_text("r_kpc v_kms v_err_kms\n0.5 20 4\n1.0 60 4\n1.5 70 4\n1.5 71 4\n")
+    with pytest.raises(RotationCurveError, match=r"row 4 \(1.5\) repeats row 3"):
+        load_rotation_curve(dup, distance_mpc=10.0)
+    # the same rows in order load unchanged
+    table.write_text("r_arcsec,v_kms,v_err_kms\n1,20,4\n2,45,4\n3,60,4\n6,100,4\n")
+    np.testing.assert_allclose(load_rotation_curve(table).v_kms, [20, 45, 60, 100])
 
 
 # -- tilted rings ------------------------------------------------------------

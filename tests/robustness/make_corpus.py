@@ -626,6 +626,11 @@ def _recipe_cases(folder: Path) -> list[CorpusCase]:
              "r_arcsec v_kms v_err_kms\n1.0 50.0 5.0\n2.0 90.0 5.0\n"
              "2.0 95.0 5.0\n3.0 120.0 5.0\n",
              "strictly increasing"),
+            # out of order: refused (row named), never sorted silently
+            ("rotation_curve_decreasing_radius",
+             "r_arcsec v_kms v_err_kms\n1.0 50.0 5.0\n3.0 120.0 5.0\n"
+             "2.0 90.0 5.0\n4.0 130.0 5.0\n",
+             "row 3 (2) is smaller than row 2 (3)"),
             ("rotation_curve_no_header", "1.0 50.0 5.0\n2.0 90.0 5.0\n",
              "column")):
         table = folder / f"{name}.txt"
