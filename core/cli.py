@@ -64,6 +64,8 @@ Typical use:
   gyrometer check g.toml                  validate it without running
   gyrometer measure g.toml                run it (tables, figures, session)
   gyrometer measure *.toml --table paper.tex   a whole sample, one table
+  gyrometer sample survey.toml            a whole sample in parallel (resumable;
+                                          --scheduler tcp://HOST:8786 for Dask)
 """
 
 
@@ -679,6 +681,9 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--force", action="store_true")
     q.set_defaults(func=_cmd_regions)
     _common(q)
+
+    from .survey import add_sample_subcommand
+    add_sample_subcommand(sub)
     return parser
 
 

@@ -440,7 +440,9 @@ def auto_slits(maps, geometry: DiskGeometry, rule) -> SlitSet:
         if half > 2.0 * scale:
             slits.append(Slit(slit.offset_arcsec, width, half))
     if len(slits) < 3:
+        prov = tuple(getattr(maps, "provenance", ()) or ())
         raise GeometryError("fewer than 3 slits fit inside the field",
+                            path=(prov[0].path or None) if prov else None,
                             hint="give [slits] values in the recipe")
     return SlitSet(tuple(slits), symmetric=True)
 

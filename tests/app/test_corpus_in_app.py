@@ -2,14 +2,16 @@
 
 The corpus (``tests/robustness/make_corpus.py``, shared with the command-line
 tests) is fed through the path a user takes in the window: File > Open for
-data files, recipes and sessions (:meth:`Controller.open_path`), the moment
-dialog for cubes, the geometry panel's edits (:meth:`Controller.update_geometry`),
-Save for an existing file and the full run for a recipe whose rotation curve
-is bad. For each case the app must show exactly one error dialog (the
-window's one error display, :func:`gyrometer.app.errordialog.show_error`,
-is replaced by a recorder) holding the case's message and the file's name,
-never an "Unexpected ..." bug report; afterwards the user's slits and
-geometry are those from before, and an edit still works.
+data files and sessions (:meth:`Controller.open_path`; a recipe's job
+reaches the app as the session ``gyrometer session`` makes of it), the
+moment dialog for cubes, the geometry panel's edits
+(:meth:`Controller.update_geometry`), Save onto an existing file, and the
+full run for a job whose rotation-curve table is bad. For each case the app
+must show exactly one error dialog (the window's one error display,
+:func:`gyrometer.app.errordialog.show_error`, is replaced by a recorder)
+holding the case's message and the file's name, never an "Unexpected ..."
+bug report; afterwards the user's slits and geometry are those from before,
+and an edit still works.
 """
 
 from __future__ import annotations
@@ -42,15 +44,36 @@ _MC = _load_make_corpus()
 with tempfile.TemporaryDirectory() as _scratch:
     _ALL = {c.name: c.kind for c in _MC.build_corpus(_scratch)}
 
-#: Corpus kinds the app has no way to feed. The app cannot import a region
-#: file (slit regions are exported only; ``gyrometer regions import`` is the
-#: command line's), so the "regions" cases are the command line's alone.
-#: Slits off the data ("slits") are not a fault of an edit in the app: a slit
-#: dragged off the map is allowed mid-drag and the live result says why
-#: there is no measurement (checked below by
-#: ``test_slits_moved_off_the_data_leave_no_measurement_and_no_dialog``).
-_NO_APP_PATH = {"regions", "slits"}
+#: Corpus kinds the app has no way to feed, left to the command line:
+#: * "regions": the app cannot import a region file (slit regions are only
+#:   exported; ``gyrometer regions import`` is the command line's);
+#: * "recipe": the app opens sessions, not recipes (a recipe is the command
+#:   line's input); any recipe is refused with one message, checked by
+#:   ``test_opening_a_recipe_says_it_is_not_a_session``. The recipe faults
+#:   that are edits in the app (inclination 0 or 90 deg, distance <= 0) are
+#:   the "geometry" cases, fed through the geometry edits;
+#: * "slits": slits off the data are not refused in the app: a slit dragged
+#:   off the map is allowed mid-drag and the live result says why there is
+#:   no measurement (``test_slits_moved_off_the_data_...`` below).
+_NO_APP_PATH = {"regions", "recipe", "slits"}
 CASE_NAMES = sorted(n for n, kind in _ALL.items() if kind not in _NO_APP_PATH)
+
+#: Where the app's message differs from the Python API's, by design: File >
+#: Open takes a cube or a map set (:func:`gyrometer.core.fitsio.open_data`),
+#: so a file with no 3D image is judged as a map set.
+_APP_MESSAGE = {"2d_not_cube": "no map extension recognised",
+                "empty_data": "no map extension recognised",
+                "one_pixel_cube": "no map extension recognised"}
+
+
+def _session_of(recipe: Path, folder: Path) -> Path:
+    """The session file ``gyrometer session`` makes of ``recipe``: the way
+    a recipe's job reaches the app."""
+    from gyrometer.core.recipe import load_recipe
+    from gyrometer.core.session import save_session
+    out = folder / f"{recipe.stem}.session.toml"
+    save_session(load_recipe(recipe), out)
+    return out
 
 
 @pytest.fixture(scope="module")
@@ -94,14 +117,15 @@ def _lay_out_slits(c) -> None:
     assert c.measurement is not None
 
 
-def _feed(case, window, idle) -> None:
+def _feed(case, window, idle, folder: Path) -> None:
     """Feed ``case`` to the app as a user would."""
     c = window.controller
     if case.kind in ("cube", "maps"):
-        # separate_maps_wcs_disagree is met through its recipe (files[-1])
-        path = case.files[-1] if case.files[-1].suffix == ".toml" else case.files[0]
+        recipes = [p for p in case.files if p.suffix == ".toml"]
+        # one file per map, or a job's slit settings: met through a session
+        path = _session_of(recipes[0], folder) if recipes else case.files[0]
         c.open_path(path)
-    elif case.kind in ("recipe", "session"):
+    elif case.kind == "session":
         c.open_path(case.files[0])
     elif case.kind == "geometry":
         key = "inc_deg" if "inclination" in case.name else "distance_mpc"
@@ -111,11 +135,7 @@ def _feed(case, window, idle) -> None:
         # Save onto an existing file, without the window's "Replace?" question
         c.save_session(case.files[0])
     elif case.kind == "rotation_curve":
-        table, recipe = case.files
-        c.open_path(recipe)          # a valid job whose rotation curve is bad
-        idle()
-        assert c.source_path == str(recipe)
-        return
+        c.run_full()                 # the job was opened beforehand
     else:  # pragma: no cover - a new corpus kind must be given an app path
         raise AssertionError(f"no app path for corpus kind {case.kind!r}")
     idle()
@@ -123,28 +143,30 @@ def _feed(case, window, idle) -> None:
 
 @pytest.mark.parametrize("name", CASE_NAMES)
 def test_bad_input_shows_one_error_dialog_and_keeps_the_slits(
-        name, corpus, opened, shown, idle, monkeypatch):
+        name, corpus, opened, shown, idle, monkeypatch, tmp_path):
     monkeypatch.setattr("gyrometer.app.mainwindow.MomentDialog", _OkMomentDialog)
     case = corpus[name]
     c = opened.controller
     _lay_out_slits(c)
     if case.kind == "rotation_curve":
-        _feed(case, opened, idle)        # opening the recipe itself is fine
+        # a valid job whose rotation-curve table is bad: it opens fine
+        session = _session_of(case.files[1], tmp_path)
+        c.open_path(session)
+        idle()
         assert not shown, shown
-        c.make_slits(3, 2.0, 2.0, 5.0)   # the user's slits on that job
+        assert c.source_path == str(session)
+        _lay_out_slits(c)            # the user's slits on that job
     before = (c.maps, c.geometry, c.slits, c.undo_stack.count())
     with warnings.catch_warnings():
         # fuzzed headers may make astropy warn; the fault must still be ours
         warnings.simplefilter("ignore", Warning)
-        if case.kind == "rotation_curve":
-            c.run_full()
-            idle()
-        else:
-            _feed(case, opened, idle)
+        _feed(case, opened, idle, tmp_path)
     assert len(shown) == 1, shown
     title, message = shown[0]
+    assert title  # the dialog says which action failed
     assert "Unexpected" not in message and "Traceback" not in message
-    assert case.message.lower() in message.lower(), message
+    expected = _APP_MESSAGE.get(name, case.message)
+    assert expected.lower() in message.lower(), message
     if case.kind != "geometry":     # a geometry edit has no file
         assert case.files[0].name in message, message
     # nothing the user made is lost, and the window still takes edits
@@ -177,3 +199,19 @@ def test_slits_moved_off_the_data_leave_no_measurement_and_no_dialog(
     assert any(corpus["slits_off_the_data"].message in n for n in notes), notes
     c.undo_stack.undo()
     assert c.slits == before and c.measurement is not None
+
+
+def test_opening_a_recipe_says_it_is_not_a_session(corpus, opened, shown, idle):
+    # the app opens sessions; a recipe (here a valid one) is refused with the
+    # file's name and the way to run it, and nothing on screen changes
+    c = opened.controller
+    _lay_out_slits(c)
+    before = (c.maps, c.geometry, c.slits)
+    recipe = corpus["recipe_unknown_key"].files[0].with_name("regions_into.toml")
+    c.open_path(recipe)
+    idle()
+    assert len(shown) == 1, shown
+    message = shown[0][1]
+    assert "regions_into.toml" in message and "not a session file" in message
+    assert "gyrometer measure" in message
+    assert (c.maps, c.geometry, c.slits) == before

@@ -249,3 +249,12 @@ def test_sample_recipes_check(name, capsys):
     assert "OK" in out and name in out
     if name == "LBDP-023":
         assert "pattern speed against radius: one annulus per slit pair" in out
+
+
+def test_the_sample_subcommand_is_part_of_the_gyrometer_command():
+    """`gyrometer sample` runs core.survey's command (one console script)."""
+    from gyrometer.core import cli, survey
+
+    args = cli.build_parser().parse_args(["sample", "survey.toml", "--workers", "2"])
+    assert args.func is survey.run_sample_command
+    assert args.workers == 2
