@@ -39,7 +39,7 @@ from .slits import PixelFrame, Slit, SlitSet, _strip_pixels, pixel_frame, slit_w
 from .tw import _layout, _pixel_terms_maps, _row_bad, _used_rows, measure
 from .yorkfit import york_slopes
 
-__all__ = ["BudgetSettings", "run_budget", "TERM_NAMES"]
+__all__ = ["BudgetSettings", "run_budget", "summarise_term", "TERM_NAMES"]
 
 #: Names of the budget terms, in table order.
 TERM_NAMES = ("noise", "slit bootstrap", "position angle", "centre",
@@ -357,7 +357,12 @@ def _noise_sums(prep_noise, seed_seq, nd: int):
         return (np.where(bb > 0, aa / bb, np.nan), np.where(bb > 0, cc / bb, np.nan))
 
 
-def _summarise(name: str, omega) -> BudgetTerm:
+def summarise_term(name: str, omega) -> BudgetTerm:
+    """Percentiles of one term's draws of Omega_p (NaN draws dropped).
+
+    Raises FitError when fewer than two draws are valid. ``share`` is left
+    NaN; the caller fills it once every term is known.
+    """
     omega = np.asarray(omega, float)
     good = omega[np.isfinite(omega)]
     if good.size < 2:
@@ -553,7 +558,7 @@ def run_budget(maps: MapSet, geometry: DiskGeometry, slits: SlitSet | Sequence[S
     finally:
         if pool is not None:
             pool.shutdown()
-    terms = [_summarise(name, results[name]) for name in TERM_NAMES if name in results]
+    terms = [summarise_term(name, results[name]) for name in TERM_NAMES if name in results]
     var_sum = sum(t.sigma ** 2 for t in terms[:-1])
     terms = [BudgetTerm(t.name, t.n_draws, t.p16, t.median, t.p84, t.sigma,
                         (t.sigma ** 2 / var_sum) if var_sum > 0 else float("nan"))

@@ -58,6 +58,7 @@ from typing import Any
 
 import numpy as np
 
+from .budget import summarise_term
 from .errors import (FitError, GeometryError, OutputError,
                      RotationCurveError, SessionError)
 from .geometry import DiskGeometry, kpc_per_arcsec
@@ -666,19 +667,6 @@ def _seeds(seed: int) -> list[np.random.SeedSequence]:
     return np.random.SeedSequence([int(seed), 0x6779726F]).spawn(5)
 
 
-def _term(name: str, draws) -> Any:
-    from .results import BudgetTerm
-
-    d = np.asarray(draws, dtype=float)
-    d = d[np.isfinite(d)]
-    if d.size < 2:
-        raise FitError(f"the '{name}' term gave fewer than two valid draws",
-                       hint="check the slits and the uncertainties")
-    p16, med, p84 = np.percentile(d, [16, 50, 84])
-    return BudgetTerm(name, int(d.size), float(p16), float(med), float(p84),
-                      float(0.5 * (p84 - p16)), float("nan"))
-
-
 def absorption_budget(cube, geometry: DiskGeometry, slits: SlitSet, absorption,
                       session: Session, seed_seq: np.random.SeedSequence, *,
                       notes: list[str] | None = None,
@@ -776,7 +764,7 @@ def absorption_budget(cube, geometry: DiskGeometry, slits: SlitSet, absorption,
         draws["inclination"] = m.fit.slope / sin_i
     if not draws:
         return None
-    terms = [_term(name, d) for name, d in draws.items()]
+    terms = [summarise_term(name, d) for name, d in draws.items()]
     combined = np.full(n, nominal)
     for t, d in zip(terms, draws.values()):
         d = np.asarray(d, float)
@@ -786,7 +774,7 @@ def absorption_budget(cube, geometry: DiskGeometry, slits: SlitSet, absorption,
     terms = [BudgetTerm(t.name, t.n_draws, t.p16, t.median, t.p84, t.sigma,
                         t.sigma ** 2 / total_var if total_var > 0 else 0.0)
              for t in terms]
-    all_term = _term("all combined", combined)
+    all_term = summarise_term("all combined", combined)
     terms.append(BudgetTerm(all_term.name, all_term.n_draws, all_term.p16,
                             all_term.median, all_term.p84, all_term.sigma, 1.0))
     sampled = ", ".join(f"{t.name} ({t.n_draws} draws)" for t in terms[:-1])

@@ -333,14 +333,20 @@ def slit_integrals_maps(maps: MapSet, geometry: DiskGeometry,
         weights = _check_weights(weights, maps.shape)
         layout = _layout(weights)
     terms, valid = _pixel_terms_maps(layout, maps, geometry.vsys_kms)
+    return _integrals_from_terms(layout, terms, valid, len(weights), symmetric,
+                                 offsets_arcsec, half_lengths_arcsec)
+
+
+
+def _integrals_from_terms(layout, terms, valid, n: int, symmetric: bool,
+                          offsets_arcsec, half_lengths_arcsec) -> SlitIntegrals:
+    """Row sums, mirrored masking and normalisation shared by both routes."""
     sums = _row_sums(layout, terms, valid)
     bad = _row_bad(layout, valid)
-    n = len(weights)
     offsets = np.full(n, np.nan) if offsets_arcsec is None else offsets_arcsec
     halves = np.full(n, np.nan) if half_lengths_arcsec is None else half_lengths_arcsec
     return _reduce(layout, sums, bad, symmetric, np.asarray(offsets, float),
                    np.asarray(halves, float))
-
 
 def _channel_velocities(cube: Cube):
     """Channel-centre velocities and widths (km/s) in the cube's convention."""
@@ -455,13 +461,8 @@ def slit_integrals_cube(cube: Cube, geometry: DiskGeometry,
     if not has_var:
         var0[:] = var1[:] = cov01[:] = np.nan
     terms = tuple(np.where(valid, arr[entry], 0.0) for arr in (m0, m1, var0, var1, cov01))
-    sums = _row_sums(layout, terms, valid)
-    bad = _row_bad(layout, valid)
-    n = len(weights)
-    offsets = np.full(n, np.nan) if offsets_arcsec is None else offsets_arcsec
-    halves = np.full(n, np.nan) if half_lengths_arcsec is None else half_lengths_arcsec
-    return _reduce(layout, sums, bad, symmetric, np.asarray(offsets, float),
-                   np.asarray(halves, float))
+    return _integrals_from_terms(layout, terms, valid, len(weights), symmetric,
+                                 offsets_arcsec, half_lengths_arcsec)
 
 
 def _usable(integrals: SlitIntegrals, exclude=()) -> np.ndarray:
