@@ -203,7 +203,7 @@ class QtMapView(QWidget):
         if maps is None or geometry is None:
             self._frame = None
         else:
-            self._frame = SkyFrame.from_wcs(maps.wcs, geometry)
+            self._frame = SkyFrame.from_wcs(maps.wcs, geometry, maps.shape)
         shape = maps.shape if maps is not None else (1, 1)
         self.compass.update(self._frame, shape)
         self.geometry_overlay.update(self._frame, geometry,

@@ -2,8 +2,8 @@
 
 Overlays (slits, the line of nodes, resonance ellipses) are drawn many times
 a second while the user drags. :class:`SkyFrame` linearises the map's WCS at
-the disk centre once (three calls to
-:func:`gyrometer.core.coords.offsets_to_pixel`) and then maps offsets to
+the disk centre once (core's
+:func:`gyrometer.core.slits.pixel_frame`, the map the slit weights use) and then maps offsets to
 pixels with a 2x2 matrix. It is used only to draw and to turn mouse motion
 into slit offsets; every number that enters a measurement is computed by
 core from the exact WCS.
@@ -15,8 +15,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from gyrometer.core.coords import (lon_to_sky, offsets_to_pixel,
-                                   pixel_scale_arcsec, sky_to_lon)
+from gyrometer.core.coords import lon_to_sky, sky_to_lon
+from gyrometer.core.slits import pixel_frame
 
 __all__ = ["SkyFrame"]
 
@@ -45,17 +45,18 @@ class SkyFrame:
     pixel_scale_arcsec: float
 
     @classmethod
-    def from_wcs(cls, wcs, geometry) -> "SkyFrame":
-        scale = pixel_scale_arcsec(wcs)
-        step = 5.0 * scale
-        px, py = offsets_to_pixel(wcs, geometry.ra_deg, geometry.dec_deg,
-                                  np.array([0.0, step, 0.0]),
-                                  np.array([0.0, 0.0, step]))
-        origin = np.array([px[0], py[0]])
-        matrix = np.array([[px[1] - px[0], px[2] - px[0]],
-                           [py[1] - py[0], py[2] - py[0]]]) / step
+    def from_wcs(cls, wcs, geometry, shape: tuple[int, int]) -> "SkyFrame":
+        """Invert core's linearised WCS at the disk centre.
+
+        Uses :func:`gyrometer.core.slits.pixel_frame`, the same tangent map
+        the slit weights are computed with, so what is drawn is what is
+        measured.
+        """
+        frame = pixel_frame(wcs, shape, geometry)
+        matrix = np.linalg.inv(frame.jac)           # pixels per arcsec
+        origin = -matrix @ frame.origin             # pixel of the centre
         return cls(origin, matrix, float(geometry.pa_deg),
-                   float(geometry.inc_deg), scale)
+                   float(geometry.inc_deg), frame.pixel_scale_arcsec)
 
     # -- sky offsets <-> pixels ---------------------------------------
     def to_pixel(self, east, north):
