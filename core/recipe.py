@@ -158,6 +158,31 @@ def _rel(path: Path, base: Path | None) -> str:
         return str(path)
 
 
+
+def _cube_tracer(cube) -> str | None:
+    """The tracer of the built-in line whose rest value the cube's header gives.
+
+    Matches RESTFRQ/RESTWAV against :func:`gyrometer.core.lines.list_lines`
+    to 1e-4 (relative); ``None`` when the header has no rest value or no
+    line matches.
+    """
+    import astropy.units as u
+
+    from .lines import list_lines
+
+    axis = cube.spectral
+    if not axis.rest_value or not axis.rest_unit:
+        return None
+    try:
+        rest_hz = (axis.rest_value * u.Unit(axis.rest_unit)).to_value(
+            u.Hz, equivalencies=u.spectral())
+    except (ValueError, TypeError):
+        return None
+    for line in list_lines():
+        if line.frequency_hz and abs(rest_hz / line.frequency_hz - 1.0) < 1e-4:
+            return line.tracer
+    return None
+
 def _estimates(data_path: Path) -> dict[str, dict[str, object]]:
     """Cheap values from the data: route, name, tracer, centre, slits.
 
@@ -176,6 +201,9 @@ def _estimates(data_path: Path) -> dict[str, dict[str, object]]:
     if isinstance(data, Cube):
         est["input"]["kind"] = "cube"
         est["input"]["cube"] = str(data_path)
+        tracer = _cube_tracer(data)
+        if tracer:
+            est["galaxy"]["tracer"] = tracer
         shape = data.spatial_shape
         image = None
     else:

@@ -400,7 +400,7 @@ SCHEMA: dict[str, tuple[KeySpec, ...]] = {
     ),
     "input": (
         KeySpec("kind", "str", "maps", "'maps' (intensity + velocity FITS "
-                "maps) or 'cube' (one spectral cube)", ROUTES),
+                "maps), 'cube' (one spectral cube, emission line) or 'absorption' (a stellar absorption-line cube)", ROUTES),
         KeySpec("maps", "path", "", "one multi-extension FITS file with the "
                 "maps (INTENSITY, VELOCITY [, *_ERR] extensions)"),
         KeySpec("intensity", "path", "", "FITS map of the tracer's surface "

@@ -227,3 +227,17 @@ geometry_draws = 10
     # the section is off unless enabled
     off = load_recipe(_write(tmp_path, GOOD + "\n[radial]\nn_mc = 5\n", "o.toml"))
     assert off.radial is None
+
+
+def test_starter_recipe_takes_the_tracer_from_the_cube_rest_value():
+    """RESTFRQ of the HI sample (1420.405751768 MHz, HI 21 cm; core.lines)
+    and the H-alpha sample's line make the starter name the right tracer."""
+    from pathlib import Path
+
+    from gyrometer.core.recipe import starter_recipe
+
+    samples = Path(__file__).resolve().parents[2] / "sample_cubes"
+    hi = starter_recipe(samples / "LBDP-023_hi_cube.fits")
+    assert 'tracer = "HI"' in hi
+    halpha = starter_recipe(samples / "LBDP-011_halpha_cube.fits")
+    assert 'tracer = "ionised gas"' in halpha
