@@ -49,13 +49,23 @@ neighbours whatever the block size (the mask is identical for any block
 size). Each block is read once into native float32 and summed with one
 matrix product in float32 (float64 for float64 cubes); the per-block sums
 are accumulated in float64. The result therefore depends on the block size
-only at the level of float32 rounding (~1e-7 relative). Memory: a few
-blocks of ``chunk_channels`` (default about 32 MiB each) plus the sideband
-channels used for the noise.
+only at the level of float32 rounding (~1e-7 relative). With the smooth
+mask the blocks are independent and are worked on by up to two threads
+(numpy releases the GIL in its loops), each in its own reused work arrays;
+their sums are added in block order, so the result is the same as a serial
+run. A block whose float sum is finite has no NaN or infinity and skips
+the NaN bookkeeping. Memory: a few blocks of ``chunk_channels`` (default
+about 32 MiB each) per thread plus the sideband channels used for the
+noise.
 """
 
 from __future__ import annotations
 
+import os
+import threading
+from collections import deque
+from collections.abc import Callable, Iterator, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, fields
 
 import astropy.units as u
@@ -77,6 +87,8 @@ MASK_METHODS = ("smooth", "none")
 CONTINUUM_METHODS = ("auto", "sidebands", "none")
 _MAD_TO_SIGMA = 1.482602218505602  # 1 / Phi^-1(3/4), normal distribution
 _CHUNK_BYTES = 32 * 2**20
+#: Threads for the smooth-mask blocks (numpy releases the GIL in its loops).
+_WORKERS = max(1, min(2, os.cpu_count() or 1))
 
 
 @dataclass(frozen=True)
@@ -179,6 +191,32 @@ def _rest_argument(settings: MomentSettings):
     return settings.line
 
 
+class _Workspace:
+    """Reused work arrays of one thread, by name (grown when too small).
+
+    Large fresh arrays cost page faults, which threads of one process
+    serialise on; the smooth-mask blocks therefore work in these.
+    """
+
+    def __init__(self) -> None:
+        self.arrays: dict[str, np.ndarray] = {}
+
+    def get(self, name: str, shape: tuple[int, ...], dtype) -> np.ndarray:
+        size = int(np.prod(shape))
+        array = self.arrays.get(name)
+        if array is None or array.size < size or array.dtype != dtype:
+            array = np.empty(max(size, 1), dtype)
+            self.arrays[name] = array
+        return array[:size].reshape(shape)
+
+
+def _empty(ws: _Workspace | None, name: str, shape: tuple[int, ...],
+           dtype) -> np.ndarray:
+    if ws is None:
+        return np.empty(shape, dtype)
+    return ws.get(name, shape, dtype)
+
+
 def _gaussian_kernel(sigma_pix: float) -> np.ndarray:
     """Normalised Gaussian taps, truncated at 2 sigma (enough for a mask)."""
     radius = max(1, int(2.0 * sigma_pix + 0.5))
@@ -193,39 +231,54 @@ def _index(ndim: int, axis: int, part: slice) -> tuple:
     return tuple(index)
 
 
-def _correlate(a: np.ndarray, kernel: np.ndarray, axis: int) -> np.ndarray:
+def _correlate(a: np.ndarray, kernel: np.ndarray, axis: int,
+               ws: _Workspace | None = None) -> np.ndarray:
     """Correlate with a symmetric odd kernel along ``axis`` (1 or 2 of a
     3D block); zeros beyond the edges. Shifted-slice sums: contiguous and
     vectorised. Along the last axis the rows are padded with ``radius``
     zeros and shifted as one flat array, so that no per-row loop is
-    needed (the padding supplies the zeros beyond each row's ends)."""
+    needed (the padding supplies the zeros beyond each row's ends).
+    Each tap's product is rounded to the array's precision and then
+    added, in the same order whether or not a workspace ``ws`` is used."""
     radius = kernel.size // 2
     taps = [a.dtype.type(k) for k in kernel]
+    name = f"correlate{axis}"
     if axis == a.ndim - 1:
         n = a.shape[-1]
-        padded = np.zeros(a.shape[:-1] + (n + radius,), a.dtype)
+        padded = _empty(ws, name + "pad", a.shape[:-1] + (n + radius,),
+                        a.dtype)
+        padded[..., n:] = 0
         padded[..., :n] = a
         flat = padded.reshape(-1)
-        out = flat * taps[radius]
+        out = np.multiply(flat, taps[radius],
+                          out=_empty(ws, name, flat.shape, a.dtype))
+        product = _empty(ws, "product", flat.shape, a.dtype)
         for j in range(1, radius + 1):
-            out[j:] += taps[radius + j] * flat[:-j]
-            out[:-j] += taps[radius - j] * flat[j:]
+            out[j:] += np.multiply(taps[radius + j], flat[:-j],
+                                   out=product[:-j])
+            out[:-j] += np.multiply(taps[radius - j], flat[j:],
+                                    out=product[j:])
         return out.reshape(padded.shape)[..., :n]
-    out = a * taps[radius]
+    out = np.multiply(a, taps[radius], out=_empty(ws, name, a.shape, a.dtype))
+    product = _empty(ws, "product", a.shape, a.dtype)
     n = a.shape[axis]
     for j in range(1, min(radius, n - 1) + 1):
         head = _index(a.ndim, axis, slice(j, None))
         tail = _index(a.ndim, axis, slice(None, -j))
-        out[head] += taps[radius + j] * a[tail]
-        out[tail] += taps[radius - j] * a[head]
+        out[head] += np.multiply(taps[radius + j], a[tail],
+                                 out=product[head])
+        out[tail] += np.multiply(taps[radius - j], a[head],
+                                 out=product[tail])
     return out
 
 
-def _boxcar0(a: np.ndarray, width: int, scale: float) -> np.ndarray:
+def _boxcar0(a: np.ndarray, width: int, scale: float,
+             ws: _Workspace | None = None) -> np.ndarray:
     """``scale`` x sum over ``width`` neighbouring channels (axis 0), the
     edge channels repeated beyond the ends of ``a``."""
     half = width // 2
-    out = a.copy()
+    out = _empty(ws, "boxcar", a.shape, a.dtype)
+    np.copyto(out, a)
     n = a.shape[0]
     for j in range(1, half + 1):
         k = min(j, n)
@@ -284,7 +337,8 @@ class _Smoother:
         self.kernel = _gaussian_kernel(sigma) if sigma >= 0.3 else None
         self.n_channels = n_channels
 
-    def _binned(self, block: np.ndarray, scale: float) -> np.ndarray:
+    def _binned(self, block: np.ndarray, scale: float,
+                ws: _Workspace | None = None) -> np.ndarray:
         b = self.bin
         if b == 1:
             return block if scale == 1.0 else block * block.dtype.type(scale)
@@ -294,21 +348,29 @@ class _Smoother:
             padded = np.zeros((nb, big_y, big_x), block.dtype)
             padded[:, :ny, :nx] = block
             block = padded
-        rows = block[:, 0::b]
-        for i in range(1, b):
-            rows = rows + block[:, i::b]
-        out = rows[:, :, 0::b]
-        for j in range(1, b):
-            out = out + rows[:, :, j::b]
+        rows = np.add(block[:, 0::b], block[:, 1::b],
+                      out=_empty(ws, "rows", (nb, big_y // b, big_x),
+                                 block.dtype))
+        for i in range(2, b):
+            np.add(rows, block[:, i::b], out=rows)
+        out = np.add(rows[:, :, 0::b], rows[:, :, 1::b],
+                     out=_empty(ws, "binned", (nb, big_y // b, big_x // b),
+                                block.dtype))
+        for j in range(2, b):
+            np.add(out, rows[:, :, j::b], out=out)
         out *= out.dtype.type(scale)
         return out
 
-    def data(self, block: np.ndarray) -> np.ndarray:
-        out = self._binned(block, 1.0 / self.bin ** 2)
+    def data(self, block: np.ndarray, ws: _Workspace | None = None
+             ) -> np.ndarray:
+        """Smoothed ``block`` on the binned grid (in ``ws`` arrays if
+        given: valid until the next call with the same workspace)."""
+        out = self._binned(block, 1.0 / self.bin ** 2, ws)
         if self.n_channels > 1:
-            out = _boxcar0(out, self.n_channels, 1.0 / self.n_channels)
+            out = _boxcar0(out, self.n_channels, 1.0 / self.n_channels, ws)
         if self.kernel is not None:
-            out = _correlate(_correlate(out, self.kernel, 1), self.kernel, 2)
+            out = _correlate(_correlate(out, self.kernel, 1, ws),
+                             self.kernel, 2, ws)
         return out
 
     def variance(self, block: np.ndarray) -> np.ndarray:
@@ -320,12 +382,15 @@ class _Smoother:
             out = _correlate(_correlate(out, k2, 1), k2, 2)
         return out
 
-    def upsample(self, mask: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
+    def upsample(self, mask: np.ndarray, shape: tuple[int, ...],
+                 ws: _Workspace | None = None, name: str = "upsampled"
+                 ) -> np.ndarray:
         b = self.bin
         if b == 1:
             return mask
         nb, ny, nx = shape
-        out = np.empty((nb, mask.shape[1] * b, mask.shape[2] * b), bool)
+        out = _empty(ws, name, (nb, mask.shape[1] * b, mask.shape[2] * b),
+                     mask.dtype)
         for i in range(b):
             for j in range(b):
                 out[:, i::b, j::b] = mask
@@ -534,32 +599,33 @@ def compute_moments(cube: Cube, settings: MomentSettings | None = None, *,
     sigma2 = None if sigma_raw is None else (sigma_raw ** 2).reshape(1, -1)
     total = w1 - w0
     report(progress, 0, total, "moments")
-    for c0 in range(w0, w1, chunk):
-        check_cancel(cancel, "moment maps")
-        c1 = min(c0 + chunk, w1)
-        n = c1 - c0
-        r0, r1 = max(0, c0 - halo), min(n_chan, c1 + halo)
-        block = _read(cube, r0, r1)
-        if continuum.points:
-            block -= continuum(r0, r1).astype(block.dtype)
-        u_kms = v_kms[c0:c1] - v_ref
-        dv = dv_kms[c0:c1]
-        # per-block sums in the block's precision, accumulated in float64
-        weights = np.stack([dv, dv * u_kms, dv * u_kms ** 2]).astype(block.dtype)
-        if use_mask:
-            finite = np.isfinite(block)
-            np.copyto(block, 0, where=~finite)  # NaN -> 0, in place
-            inner = slice(c0 - r0, c1 - r0)
-            values = block[inner].reshape(n, -1)  # a view, zeroed in place
-            keep = finite[inner].reshape(n, -1)
-            any_finite |= np.logical_or.reduce(keep, axis=0)
-            signal = _signal_mask(block, smoother, settings, sigma_smooth,
-                                  cube, (r0, r1), (w0, w1))
-            keep = keep & signal[inner].reshape(n, -1)
-            np.copyto(values, 0, where=~keep)
-            any_valid |= np.logical_or.reduce(keep, axis=0)
-            sums += weights @ values
-        else:
+    if use_mask:
+        jobs = [(c0, min(c0 + chunk, w1)) for c0 in range(w0, w1, chunk)]
+        masked = _MaskedSums(cube, continuum, smoother, settings,
+                             sigma_smooth, sigma2, (w0, w1), halo, v_kms,
+                             dv_kms, v_ref, with_errors)
+        for (c0, c1), part in _in_order(masked, jobs, cancel):
+            block_sums, block_err, block_finite, block_valid = part
+            sums += block_sums
+            if err_sums is not None:
+                err_sums += block_err
+            any_finite |= block_finite
+            any_valid |= block_valid
+            report(progress, c1 - w0, total, "moments")
+    else:
+        for c0 in range(w0, w1, chunk):
+            check_cancel(cancel, "moment maps")
+            c1 = min(c0 + chunk, w1)
+            n = c1 - c0
+            r0, r1 = max(0, c0 - halo), min(n_chan, c1 + halo)
+            block = _read(cube, r0, r1)
+            if continuum.points:
+                block -= continuum(r0, r1).astype(block.dtype)
+            u_kms = v_kms[c0:c1] - v_ref
+            dv = dv_kms[c0:c1]
+            # per-block sums in the block's precision, accumulated in float64
+            weights = np.stack([dv, dv * u_kms, dv * u_kms ** 2]
+                               ).astype(block.dtype)
             # no mask: sum first, then redo only the spaxels that met a NaN
             values = block.reshape(n, -1)
             partial = weights @ values
@@ -578,17 +644,18 @@ def compute_moments(cube: Cube, settings: MomentSettings | None = None, *,
             any_finite |= ~bad
             any_valid[:] = any_finite
             sums += partial
-        if err_sums is not None:
-            if has_variance:
-                var = _read(cube, c0, c1, variance=True).reshape(n, -1)
-            else:
-                var = np.broadcast_to(sigma2.astype(values.dtype), values.shape)
-            if keep is not None:
-                var = np.where(keep, var, 0)
-            dv2 = dv ** 2
-            err_weights = np.stack([dv2 * u_kms ** k for k in range(5)])
-            err_sums += err_weights.astype(var.dtype) @ var
-        report(progress, c1 - w0, total, "moments")
+            if err_sums is not None:
+                if has_variance:
+                    var = _read(cube, c0, c1, variance=True).reshape(n, -1)
+                else:
+                    var = np.broadcast_to(sigma2.astype(values.dtype),
+                                          values.shape)
+                if keep is not None:
+                    var = np.where(keep, var, 0)
+                dv2 = dv ** 2
+                err_weights = np.stack([dv2 * u_kms ** k for k in range(5)])
+                err_sums += err_weights.astype(var.dtype) @ var
+            report(progress, c1 - w0, total, "moments")
     if not any_finite.any():
         raise DataContentError(
             f"no valid data in the velocity window ({v_kms[w0]:.1f} to "
@@ -600,15 +667,153 @@ def compute_moments(cube: Cube, settings: MomentSettings | None = None, *,
                      v_ref, (ny, nx))
 
 
+class _MaskedSums:
+    """The smooth-mask path's work on one channel block ``(c0, c1)``.
+
+    Returns the block's moment sums (3 x n_pix, block precision), its
+    error sums (5 x n_pix, float64, or None), and which spaxels had a
+    finite / a kept voxel. Blocks are independent, so they may run on
+    several threads; each thread reads into its own reused buffer (no
+    fresh pages per block). A block without NaN or infinity (its float sum
+    is finite) skips the NaN bookkeeping, and without a variance extension
+    its error sums are taken on the binned mask, where every kept voxel of
+    a bin has the same sideband noise (exact up to float32 rounding).
+    """
+
+    def __init__(self, cube: Cube, continuum: _Continuum, smoother: _Smoother,
+                 settings: MomentSettings, sigma_smooth: np.ndarray | None,
+                 sigma2: np.ndarray | None, window: tuple[int, int],
+                 halo: int, v_kms: np.ndarray, dv_kms: np.ndarray,
+                 v_ref: float, with_errors: bool) -> None:
+        self.cube, self.continuum, self.smoother = cube, continuum, smoother
+        self.settings, self.sigma_smooth = settings, sigma_smooth
+        self.sigma2, self.window, self.halo = sigma2, window, halo
+        self.v_kms, self.dv_kms, self.v_ref = v_kms, dv_kms, v_ref
+        self.with_errors = with_errors
+        self.ny, self.nx = cube.spatial_shape
+        self.local = threading.local()
+
+    def _workspace(self) -> _Workspace:
+        ws = getattr(self.local, "ws", None)
+        if ws is None:
+            ws = self.local.ws = _Workspace()
+        return ws
+
+    def _read(self, start: int, stop: int, ws: _Workspace) -> np.ndarray:
+        """Like :func:`_read`, into this thread's reused buffer."""
+        source = self.cube.data[start:stop]
+        dtype = (np.float64 if source.dtype.itemsize > 4
+                 and source.dtype.kind == "f" else np.float32)
+        block = ws.get("block", (stop - start, self.ny, self.nx), dtype)
+        np.copyto(block, source, casting="unsafe")
+        return block
+
+    def __call__(self, job: tuple[int, int]) -> tuple:
+        c0, c1 = job
+        n, n_pix = c1 - c0, self.ny * self.nx
+        r0 = max(0, c0 - self.halo)
+        r1 = min(self.v_kms.size, c1 + self.halo)
+        ws = self._workspace()
+        block = self._read(r0, r1, ws)
+        if self.continuum.points:
+            block -= self.continuum(r0, r1).astype(block.dtype)
+        u_kms = self.v_kms[c0:c1] - self.v_ref
+        dv = self.dv_kms[c0:c1]
+        # per-block sums in the block's precision, accumulated in float64
+        weights = np.stack([dv, dv * u_kms, dv * u_kms ** 2]
+                           ).astype(block.dtype)
+        with np.errstate(over="ignore", invalid="ignore"):
+            clean = bool(np.isfinite(np.add.reduce(block, axis=None)))
+        finite = None
+        if not clean:
+            finite = np.isfinite(block)
+            np.copyto(block, 0, where=~finite)  # NaN -> 0, in place
+        inner = slice(c0 - r0, c1 - r0)
+        mask = _signal_mask(block, self.smoother, self.settings,
+                            self.sigma_smooth, self.cube, (r0, r1),
+                            self.window, ws)[inner]
+        values = block[inner].reshape(n, -1)  # a view, zeroed in place
+        shape = (n, self.ny, self.nx)
+        upsample = self.smoother.upsample
+        if finite is None:
+            keep = None
+            drop = upsample(~mask, shape, ws).reshape(n, -1)
+            np.copyto(values, 0, where=drop)
+            block_finite = np.ones(n_pix, dtype=bool)
+            block_valid = upsample(np.logical_or.reduce(mask, axis=0)[None],
+                                   (1, self.ny, self.nx)).reshape(-1)
+        else:
+            keep = finite[inner].reshape(n, -1)
+            block_finite = np.logical_or.reduce(keep, axis=0)
+            keep = keep & upsample(mask, shape).reshape(n, -1)
+            np.copyto(values, 0, where=~keep)
+            block_valid = np.logical_or.reduce(keep, axis=0)
+        block_sums = weights @ values
+        block_err = None
+        if self.with_errors:
+            dv2 = dv ** 2
+            err_weights = np.stack([dv2 * u_kms ** k for k in range(5)])
+            if self.cube.variance is not None:
+                if keep is None:
+                    keep = ~drop
+                var = _read(self.cube, c0, c1, variance=True).reshape(n, -1)
+                var = np.where(keep, var, 0)
+                block_err = err_weights.astype(var.dtype) @ var
+            else:
+                # sum_c w_c keep_c s^2 = s^2 x (sum_c w_c keep_c)
+                ew = err_weights.astype(values.dtype)
+                if keep is None:  # kept voxels are whole bins of the mask
+                    my, mx = mask.shape[1:]
+                    binned = ew @ mask.reshape(n, -1).astype(values.dtype)
+                    counts = upsample(binned.reshape(5, my, mx),
+                                      (5, self.ny, self.nx)).reshape(5, -1)
+                else:
+                    counts = ew @ keep.astype(values.dtype)
+                block_err = counts * self.sigma2
+        return block_sums, block_err, block_finite, block_valid
+
+
+def _in_order(work: Callable[[tuple[int, int]], tuple],
+              jobs: Sequence[tuple[int, int]], cancel: CancelFlag | None
+              ) -> Iterator[tuple[tuple[int, int], tuple]]:
+    """``(job, work(job))`` in job order, computed on up to ``_WORKERS``
+    threads with at most ``workers + 1`` blocks in flight (bounded memory).
+    The caller accumulates in job order, so the result is the same as a
+    serial run. ``cancel`` is checked before each block."""
+    workers = max(1, min(_WORKERS, len(jobs)))
+    # a pool even for one worker: its threads' work arrays end with it
+    pool = ThreadPoolExecutor(max_workers=workers,
+                              thread_name_prefix="gyrometer-moments")
+    try:
+        queue = iter(jobs)
+        pending = deque()
+        for job in queue:
+            pending.append((job, pool.submit(work, job)))
+            if len(pending) > workers:
+                break
+        while pending:
+            check_cancel(cancel, "moment maps")
+            job, future = pending.popleft()
+            result = future.result()
+            following = next(queue, None)
+            if following is not None:
+                pending.append((following, pool.submit(work, following)))
+            yield job, result
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
 def _signal_mask(block: np.ndarray, smoother: _Smoother,
                  settings: MomentSettings, sigma_smooth: np.ndarray | None,
-                 cube: Cube, read: tuple[int, int], window: tuple[int, int]
-                 ) -> np.ndarray:
+                 cube: Cube, read: tuple[int, int], window: tuple[int, int],
+                 ws: _Workspace | None = None) -> np.ndarray:
     """Smooth, clip at snr_threshold x smoothed noise, dilate.
 
-    ``block`` holds channels ``read[0]:read[1]`` with NaN set to 0.
+    ``block`` holds channels ``read[0]:read[1]`` with NaN set to 0. The
+    mask is returned on the smoother's binned grid (see
+    :meth:`_Smoother.upsample`).
     """
-    smooth = smoother.data(block)
+    smooth = smoother.data(block, ws)
     if sigma_smooth is not None:
         limit = (settings.snr_threshold * sigma_smooth[None]).astype(smooth.dtype)
     else:
@@ -616,7 +821,8 @@ def _signal_mask(block: np.ndarray, smoother: _Smoother,
         np.copyto(var, 0, where=~np.isfinite(var))
         limit = settings.snr_threshold * np.sqrt(smoother.variance(var))
     with np.errstate(invalid="ignore"):
-        above = smooth > limit
+        above = np.greater(smooth, limit,
+                           out=_empty(ws, "above", smooth.shape, bool))
     channels = np.arange(*read)
     above &= ((channels >= window[0]) & (channels < window[1]))[:, None, None]
     if settings.dilation_channels:
@@ -624,7 +830,7 @@ def _signal_mask(block: np.ndarray, smoother: _Smoother,
     if settings.dilation_pixels:
         reach = -(-settings.dilation_pixels // smoother.bin)
         above = _grow(above, reach, (1, 2))
-    return smoother.upsample(above, block.shape)
+    return above
 
 
 def _assemble(cube: Cube, settings: MomentSettings, sums: np.ndarray,

@@ -264,6 +264,25 @@ def test_progress_and_cancel():
                         cancel=flag)
 
 
+
+def test_cancel_during_smooth_mask_blocks_stops_the_run():
+    # the smooth-mask blocks run on worker threads; cancelling after the
+    # first block must still raise Cancelled and report no further blocks
+    cube = _gaussian_cube(_axes()["VRAD"], noise=0.1)
+    flag = threading.Event()
+    calls = []
+
+    def progress(done, total, stage):
+        calls.append(done)
+        if done > 0:
+            flag.set()
+
+    with pytest.raises(Cancelled):
+        compute_moments(cube, MomentSettings(vsys_kms=1500.0, chunk_channels=5,
+                                             window_halfwidth_kms=200.0),
+                        progress=progress, cancel=flag)
+    assert len(calls) == 2  # the start and the first block, then cancelled
+
 def test_window_outside_cube():
     cube = _gaussian_cube(_axes()["VRAD"])
     with pytest.raises(DataContentError, match="lbdp-011.fits.*outside the cube"):
