@@ -1009,6 +1009,7 @@ class Controller(QObject):
             self.status.emit("Nothing to measure yet")
             return False
         from gyrometer.core import radial
+        from gyrometer.core.pipeline import radial_rng
         maps, geometry, slits = self.maps, self.geometry, self.slits
         settings = self.radial_settings or radial.RadialSettings()
         seed = self.budget_settings().seed
@@ -1016,7 +1017,7 @@ class Controller(QObject):
 
         def work(progress, cancel):
             return radial.measure_radial(maps, geometry, slits, settings,
-                                         rng=np.random.default_rng(seed),
+                                         rng=radial_rng(seed),
                                          progress=progress, cancel=cancel,
                                          warn=False)
 

@@ -85,6 +85,7 @@ __all__ = [
     "result_details",
     "results_table",
     "radial_details",
+    "radial_rng",
     "absorption_details",
     "radial_results_table",
     "write_radial_table",
@@ -880,7 +881,7 @@ def run_session(session: Session, *, progress: ProgressCallback | None = None,
     else:
         conv, pa_sens = _diagnostics(maps, geometry, slits, notes, p, cancel)
     p = stages.start("radial pattern speeds")
-    radial = _radial(session, maps, geometry, slits, seeds[3], notes, p,
+    radial = _radial(session, maps, geometry, slits, notes, p,
                      cancel)
     p = stages.start("rotation curve")
     length, length_note = _bar_length(session, maps, geometry, notes)
@@ -934,9 +935,17 @@ def _measure_absorption(cube, geometry: DiskGeometry, slits: SlitSet,
             cancel=cancel)
 
 
+def radial_rng(seed: int) -> np.random.Generator:
+    """The generator of the radial Monte Carlo for a session seed.
+
+    The pipeline and the desktop app's on-request radial measurement both
+    use it, so the same session gives the same Omega_p(R) errors in both.
+    """
+    return np.random.default_rng(_seeds(seed)[3])
+
+
 def _radial(session: Session, maps, geometry: DiskGeometry, slits: SlitSet,
-            seed_seq: np.random.SeedSequence, notes: list[str], progress,
-            cancel):
+            notes: list[str], progress, cancel):
     """Omega_p(R) with the session's slits, or None (disabled or failed)."""
     if session.radial is None:
         return None
@@ -952,7 +961,7 @@ def _radial(session: Session, maps, geometry: DiskGeometry, slits: SlitSet,
                      "maps of the cube")
     try:
         result = measure_radial(maps, geometry, slits, session.radial,
-                                rng=np.random.default_rng(seed_seq),
+                                rng=radial_rng(session.budget.seed),
                                 progress=progress, cancel=cancel, warn=False)
     except Cancelled:
         raise

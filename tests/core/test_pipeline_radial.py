@@ -150,3 +150,27 @@ def test_cli_summary_lists_every_annulus(radial_run):
     assert text.count("km/s/kpc") >= 1
     rows = [ln for ln in text.splitlines() if " - " in ln and "±" in ln]
     assert len(rows) == result.radial.n_annuli
+
+
+
+def test_radial_monte_carlo_depends_only_on_the_session_seed(radial_run):
+    """run_session's Omega_p(R) Monte Carlo equals measure_radial driven by
+    pipeline.radial_rng(seed), the generator the app's radial button uses, so
+    one session gives the same radial errors in the app and in batch output."""
+    from dataclasses import replace
+
+    from gyrometer.core.pipeline import radial_rng
+    from gyrometer.core.radial import measure_radial
+
+    tmp, model, truth, session, result, paths = radial_run
+    settings = replace(session.radial, n_mc=12)
+    batch = run_session(replace(session, radial=settings)).radial
+    resolved = result.session
+    direct = measure_radial(result.maps, resolved.geometry, resolved.slits,
+                            settings, rng=radial_rng(session.budget.seed),
+                            warn=False)
+    assert batch.mc_draws_kms_arcsec is not None
+    np.testing.assert_array_equal(batch.mc_draws_kms_arcsec,
+                                  direct.mc_draws_kms_arcsec)
+    np.testing.assert_array_equal(batch.omega_err_kms_arcsec,
+                                  direct.omega_err_kms_arcsec)
