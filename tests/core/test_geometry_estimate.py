@@ -148,18 +148,12 @@ def test_too_few_pixels_are_refused():
         photometric_geometry(empty)
 
 
-def test_kinematic_and_photometric_geometry_of_a_synthetic_barred_galaxy():
+def test_kinematic_and_photometric_geometry_of_a_synthetic_barred_galaxy(barred_test_model):
     # generator of core/synthetic.py: bar inside 2 kpc (20.6 arcsec), thin
     # disk, rotated WCS, off-centre galaxy, PSF 1.5 arcsec
-    from gyrometer.core.synthetic import GalaxyModel, PatternSpec, make_maps
+    from gyrometer.core.synthetic import make_maps
 
-    geom = DiskGeometry(ra_deg=150.0, dec_deg=2.0, pa_deg=250.0, inc_deg=55.0,
-                        vsys_kms=3000.0, distance_mpc=20.0)
-    bar = PatternSpec("bar", 40.0, 0.5, 0.0, 2.0, angle_deg=60.0)
-    model = GalaxyModel("LBDP-011", geom, disk_scale_kpc=1.5, r_turn_kpc=0.5,
-                        shape=(96, 96), pixel_scale_arcsec=1.0,
-                        wcs_rotation_deg=30.0, center_offset_pix=(2.3, -1.7),
-                        psf_fwhm_arcsec=1.5, subsample=2, patterns=(bar,))
+    geom, model = barred_test_model
     maps, _ = make_maps(model, rng=np.random.default_rng(1))
     kin = kinematic_geometry(maps, r_min_arcsec=22.0)
     # outside the bar zone the disk is axisymmetric: PA within 1 degree

@@ -254,18 +254,12 @@ def test_tilted_rings_refuse_empty_maps_and_unknown_parameters():
         tilted_rings(maps, GEOM, free_geometry=("centre",))
 
 
-def test_round_trip_with_the_synthetic_barred_galaxy_outside_the_bar():
+def test_round_trip_with_the_synthetic_barred_galaxy_outside_the_bar(barred_test_model):
     # the generator's input curve (Truth.vc) is recovered within the errors
     # outside the bar's zone, where the tracer circulates at V_c
-    from gyrometer.core.synthetic import GalaxyModel, PatternSpec, make_maps
+    from gyrometer.core.synthetic import make_maps
 
-    geom = DiskGeometry(ra_deg=150.0, dec_deg=2.0, pa_deg=250.0, inc_deg=55.0,
-                        vsys_kms=3000.0, distance_mpc=20.0)
-    bar = PatternSpec("bar", 40.0, 0.5, 0.0, 2.0, angle_deg=60.0)
-    model = GalaxyModel("LBDP-011", geom, disk_scale_kpc=1.5, r_turn_kpc=0.5,
-                        shape=(96, 96), pixel_scale_arcsec=1.0,
-                        wcs_rotation_deg=30.0, center_offset_pix=(2.3, -1.7),
-                        psf_fwhm_arcsec=1.5, subsample=2, patterns=(bar,))
+    geom, model = barred_test_model
     maps, truth = make_maps(model, rng=np.random.default_rng(0))
     result = tilted_rings(maps, geom, ring_width_arcsec=2.0)
     c = result.curve
